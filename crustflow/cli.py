@@ -1,0 +1,211 @@
+"""The ``crustflow`` command: run, demo, check.
+
+Exit status: 0 on success, 2 on bad input (one line naming the problem and the fix), 1 otherwise.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+import warnings
+from pathlib import Path
+
+from . import __version__
+from .errors import CrustflowInputError
+
+CAUTION_HELP = (
+    "Outputs are research estimates of a simplified model (thin channel, rigid walls, lithostatic "
+    "load, Newtonian viscosity); they are no basis for hazard or engineering decisions without "
+    "local, licensed review."
+)
+
+DESCRIPTION = (
+    "Maps of lower-crustal channel flow from gridded topography and crustal thickness: driving "
+    "pressure gradient, flux, velocities, wall drag, flow reversal, thickening and uplift rates, "
+    "written as CF NetCDF, GeoTIFF and a figure.\n\n" + CAUTION_HELP
+)
+
+
+class Progress:
+    """Prints one line per stage to stderr, with the time the previous stage took."""
+
+    def __init__(self, quiet: bool = False) -> None:
+        self.quiet = quiet
+        self.start = time.perf_counter()
+        self.last: tuple[str, float] | None = None
+
+    def __call__(self, name: str) -> None:
+        now = time.perf_counter()
+        if self.last is not None:
+            self._line(f"{self.last[0]} ({now - self.last[1]:.2f} s)")
+        self.last = (name, now)
+
+    def finish(self) -> None:
+        self("")
+        self.last = None
+
+    def _line(self, text: str) -> None:
+        if not self.quiet:
+            print(f"crustflow: {text}", file=sys.stderr, flush=True)
+
+
+def _run(scenario_path: Path, out: Path, quiet: bool) -> int:
+    from .export import base_manifest, check_out_dir, write_outputs
+    from .model import solve
+    from .scenario import load_scenario
+
+    began = time.perf_counter()
+    scenario = load_scenario(scenario_path)
+    check_out_dir(out.expanduser().resolve(), scenario.input_paths)
+    progress = Progress(quiet)
+    timings: dict[str, float] = {}
+    ds = solve(scenario, stage=progress, timings=timings)
+    write_stage = {"name": None, "t": time.perf_counter()}
+
+    def note(name: str) -> None:
+        now = time.perf_counter()
+        if write_stage["name"]:
+            timings[write_stage["name"]] = now - write_stage["t"]
+        write_stage.update(name=name, t=now)
+        progress(name)
+
+    import json
+
+    manifest = base_manifest(scenario, timings, json.loads(ds.attrs.get("crustflow_inputs", "{}")))
+    where = write_outputs(ds, out, manifest=manifest, variables=scenario.variables,
+                          formats=scenario.formats, inputs=scenario.input_paths, stage=note)
+    progress.finish()
+    if not quiet:
+        print(f"crustflow: wrote {where} in {time.perf_counter() - began:.1f} s", file=sys.stderr)
+        _summary(ds)
+    return 0
+
+
+def _summary(ds) -> None:
+    import numpy as np
+
+    def rng(name: str) -> str:
+        v = ds[name].values
+        v = v[np.isfinite(v)]
+        unit = ds[name].attrs.get("units", "")
+        return f"{v.min():.3g} to {v.max():.3g} {unit}" if v.size else "no valid cells"
+
+    print(f"  flux magnitude   {rng('flux_magnitude')}")
+    print(f"  thickening rate  {rng('thickening_rate')}")
+    print(f"  uplift rate      {rng('uplift_rate')}")
+    back = ds["backflow"].values
+    print(f"  backflow cells   {int(np.nansum(back))} of {int(np.isfinite(back).sum())}")
+
+
+def _check(scenario_path: Path) -> int:
+    import numpy as np
+
+    from .grids import read_inputs
+    from .model import compute_fields
+    from .scenario import load_scenario
+
+    scenario = load_scenario(scenario_path)
+    grids = read_inputs(scenario)
+    p = scenario.parameters
+    topo = grids.topography
+    print(f"scenario   {scenario.title}")
+    print(f"grid       {topo.sizes['x']} x {topo.sizes['y']} cells, CRS {topo.rio.crs.to_string()}, "
+          f"cell {abs(topo.rio.resolution()[0]):g} x {abs(topo.rio.resolution()[1]):g} "
+          f"{'degrees' if topo.rio.crs.is_geographic else 'm'}")
+    for key in ("topography", "crust_thickness", "moho_depth"):
+        da = getattr(grids, key)
+        if da is None:
+            continue
+        v = da.values[np.isfinite(da.values)]
+        print(f"{key:<16} {v.min():.6g} to {v.max():.6g} m, {da.size - v.size} nodata cells; "
+              f"{grids.provenance.get(key, {}).get('method', 'read')}")
+    notes = []
+    if not 1e16 <= p.viscosity <= 1e24:
+        notes.append(f"viscosity {p.viscosity:.3g} Pa s lies outside 1e16-1e24 Pa s, unusual for a "
+                     "crustal channel")
+    if not 1e3 <= p.channel_thickness <= 60e3:
+        notes.append(f"channel thickness {p.channel_thickness / 1e3:g} km lies outside 1-60 km")
+    compute_fields(topo, parameters=p, crust_thickness=grids.crust_thickness,
+                   moho_depth=grids.moho_depth)
+    for text in notes:
+        print(f"note: {text}")
+    print("check passed: the scenario runs")
+    return 0
+
+
+def _demo(out: Path, quiet: bool, scenario_name: str) -> int:
+    from .samples import demo_scenario
+
+    path = demo_scenario(scenario_name)
+    if not quiet:
+        print(f"crustflow: demo scenario {path}", file=sys.stderr)
+    return _run(path, out, quiet)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="crustflow", description=DESCRIPTION,
+        formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--version", action="version", version=f"crustflow {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    common = dict(formatter_class=argparse.RawDescriptionHelpFormatter)
+    run = sub.add_parser("run", help="compute channel-flow maps for a scenario file",
+                         description="Compute channel-flow maps for a scenario file (TOML) and write "
+                         "fields.nc, one GeoTIFF per variable, flux_map.png and run.json.\n\n"
+                         + CAUTION_HELP, **common)
+    run.add_argument("scenario", type=Path, help="scenario file (TOML)")
+    run.add_argument("--out", type=Path, default=Path("crustflow_out"),
+                     help="output folder (default: ./crustflow_out); replaced if it holds an "
+                     "earlier run")
+    run.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    demo = sub.add_parser("demo", help="run the bundled sample scenario",
+                          description="Run the bundled sample scenario (an invented plateau with a "
+                          "steep and a gentle margin, part of it offshore).\n\n" + CAUTION_HELP,
+                          **common)
+    demo.add_argument("--out", type=Path, default=Path("demo_out"),
+                      help="output folder (default: ./demo_out)")
+    demo.add_argument("--scenario", default="plateau",
+                      help="which sample scenario: plateau (projected, default) or plateau-lonlat")
+    demo.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    check = sub.add_parser("check", help="validate a scenario and its grids without writing anything",
+                           description="Validate a scenario file and its grids: sizes, CRS, value "
+                           "ranges and units sanity. Writes nothing.\n\n" + CAUTION_HELP, **common)
+    check.add_argument("scenario", type=Path, help="scenario file (TOML)")
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``crustflow`` command; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 2
+    warnings.simplefilter("ignore", RuntimeWarning)
+    warnings.formatwarning = lambda msg, cat, *a, **k: f"crustflow: warning: {msg}\n"
+    try:
+        if args.command == "run":
+            return _run(args.scenario, args.out, args.quiet)
+        if args.command == "demo":
+            return _demo(args.out, args.quiet, args.scenario)
+        if args.command == "check":
+            return _check(args.scenario)
+    except CrustflowInputError as exc:
+        print(f"crustflow: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("crustflow: interrupted; nothing was written", file=sys.stderr)
+        return 130
+    except Exception as exc:  # noqa: BLE001 - one line unless --debug
+        if args.debug:
+            raise
+        print(f"crustflow: internal error: {exc.__class__.__name__}: {exc} (rerun with --debug for "
+              "details and report it)", file=sys.stderr)
+        return 1
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

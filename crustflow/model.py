@@ -1,0 +1,251 @@
+"""From grids to channel-flow fields: the pipeline behind ``crustflow run`` and the Python API.
+
+``compute_fields`` works on xarray grids already in memory (for scripts and synthetic grids);
+``solve`` reads the grids a scenario names and calls it. Both return an ``xarray.Dataset`` in the
+practical units of :data:`VARIABLES` (the same variables, names and units as ``fields.nc``).
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import xarray as xr
+
+from . import __version__, load
+from .channel import channel_flow
+from .constants import SECONDS_PER_YEAR
+from .errors import CrustflowInputError
+from .maps import azimuth, divergence, grid_geometry
+from .scenario import ModelParameters, Scenario
+
+__all__ = ["Variable", "VARIABLES", "compute_fields", "solve"]
+
+
+@dataclass(frozen=True)
+class Variable:
+    """An output variable: CF metadata and the factor from SI to its practical unit."""
+
+    long_name: str
+    units: str  #: UDUNITS form, as written to files
+    factor: float  #: value in ``units`` = value in SI x factor
+    flag: bool = False  #: 0/1 flag variable
+    standard_name: str | None = None
+
+
+_MM_YR = 1e3 * SECONDS_PER_YEAR
+_M2_YR = SECONDS_PER_YEAR
+
+#: Every variable crustflow writes, in output order. Rates use the Julian year (365.25 d).
+VARIABLES: dict[str, Variable] = {
+    "crust_thickness": Variable("crustal thickness, surface to Moho", "km", 1e-3),
+    "channel_top_depth": Variable("depth of the channel top below sea level", "km", 1e-3),
+    "overburden_pressure": Variable("lithostatic pressure at the channel top", "MPa", 1e-6),
+    "drive_east": Variable("horizontal pressure gradient in the channel, east component",
+                           "Pa m-1", 1.0),
+    "drive_north": Variable("horizontal pressure gradient in the channel, north component",
+                            "Pa m-1", 1.0),
+    "flux_east": Variable("channel volume flux per unit width, east component", "m2 yr-1", _M2_YR),
+    "flux_north": Variable("channel volume flux per unit width, north component", "m2 yr-1",
+                           _M2_YR),
+    "flux_magnitude": Variable("channel volume flux per unit width, magnitude", "m2 yr-1", _M2_YR),
+    "flux_azimuth": Variable("direction of channel flux, clockwise from true north", "degree", 1.0),
+    "mean_velocity_east": Variable("channel mean velocity, east component", "mm yr-1", _MM_YR),
+    "mean_velocity_north": Variable("channel mean velocity, north component", "mm yr-1", _MM_YR),
+    "peak_speed": Variable("largest speed within the channel", "mm yr-1", _MM_YR),
+    "peak_speed_height": Variable("height of the largest speed above the channel base", "km", 1e-3),
+    "upper_wall_drag_east": Variable("shear traction of the channel on its upper wall, east",
+                                     "MPa", 1e-6),
+    "upper_wall_drag_north": Variable("shear traction of the channel on its upper wall, north",
+                                      "MPa", 1e-6),
+    "lower_wall_drag_east": Variable("shear traction of the channel on its lower wall, east",
+                                     "MPa", 1e-6),
+    "lower_wall_drag_north": Variable("shear traction of the channel on its lower wall, north",
+                                      "MPa", 1e-6),
+    "backflow": Variable("flow reversal: some height in the channel moves against the net flux",
+                         "1", 1.0, flag=True),
+    "wall_driven_share": Variable("share of the flux carried by wall motion, "
+                                  "|q_wall| / (|q_wall| + |q_pressure|)", "1", 1.0),
+    "thickening_rate": Variable("crustal thickening rate, -div(q)", "mm yr-1", _MM_YR),
+    "uplift_rate": Variable("isostatic surface uplift rate from thickening", "mm yr-1", _MM_YR),
+}
+
+
+def _grid_crs(grid: xr.DataArray):
+    crs = grid.rio.crs
+    if crs is None:
+        raise CrustflowInputError("the topography grid has no CRS; write one with "
+                                  "grid.rio.write_crs('EPSG:...') or name it in the scenario")
+    return crs
+
+
+def compute_fields(
+    topography: xr.DataArray,
+    *,
+    parameters: ModelParameters,
+    crust_thickness: xr.DataArray | None = None,
+    moho_depth: xr.DataArray | None = None,
+    stage: Callable[[str], None] | None = None,
+) -> xr.Dataset:
+    """Channel-flow fields on the topography grid.
+
+    Parameters
+    ----------
+    topography : xarray.DataArray
+        Surface elevation H, m above sea level (negative offshore), dims (y, x), CRS set with rioxarray.
+        NaN is nodata.
+    parameters : ModelParameters
+        SI parameters (densities, channel thickness and viscosity, wall velocity, gravity).
+    crust_thickness, moho_depth : xarray.DataArray, optional
+        At most one, on the topography grid's cells, m. With neither, Airy isostasy from
+        ``parameters.reference_thickness``.
+    stage : callable, optional
+        Called with a short name as each stage starts (progress display).
+
+    Returns
+    -------
+    xarray.Dataset
+        The variables of :data:`VARIABLES` in their practical units, with ``units`` and ``long_name``,
+        the CRS as a ``spatial_ref`` grid mapping, and the parameters in the attributes.
+
+    Raises
+    ------
+    CrustflowInputError
+        A channel thicker than the crust anywhere; grids not on the topography grid.
+    """
+    note = stage or (lambda name: None)
+    p = parameters
+    crs = _grid_crs(topography)
+    note("geometry")
+    if topography.y.values[0] < topography.y.values[-1]:
+        topography = topography.isel(y=slice(None, None, -1))
+        crust_thickness = None if crust_thickness is None else crust_thickness.sortby("y", False)
+        moho_depth = None if moho_depth is None else moho_depth.sortby("y", False)
+    geom = grid_geometry(topography.x.values, topography.y.values, crs)
+    H = np.asarray(topography.values, dtype="float64")
+    for other, key in ((crust_thickness, "crust_thickness"), (moho_depth, "moho_depth")):
+        if other is not None and (other.shape != H.shape
+                                  or not np.allclose(other.x.values, topography.x.values)
+                                  or not np.allclose(other.y.values, topography.y.values)):
+            raise CrustflowInputError(f"{key} is not on the topography grid's cells; align it first "
+                                      "(crustflow.grids.align_to)")
+    note("load")
+    if crust_thickness is not None:
+        T = np.asarray(crust_thickness.values, dtype="float64")
+    elif moho_depth is not None:
+        T = load.crust_thickness_from_moho(H, np.asarray(moho_depth.values, dtype="float64"))
+    else:
+        if p.reference_thickness is None:
+            raise CrustflowInputError("no crust_thickness or moho_depth grid and no "
+                                      "reference_thickness for Airy isostasy; give one of them")
+        T = load.crust_thickness_airy(H, p.reference_thickness, p.rho_crust, p.rho_mantle,
+                                      p.rho_water)
+    valid = np.isfinite(H) & np.isfinite(T)
+    h = p.channel_thickness
+    thin = valid & (T <= h)
+    if thin.any():
+        raise CrustflowInputError(
+            f"channel.thickness ({h / 1e3:g} km) is not less than the crustal thickness in "
+            f"{int(thin.sum())} cells (thinnest crust {np.nanmin(np.where(valid, T, np.nan)) / 1e3:.3g}"
+            " km); give a thinner channel or check the thickness grid")
+    T = np.where(valid, T, np.nan)
+    H = np.where(valid, H, np.nan)
+    z_top = load.channel_top_depth(H, T, h)
+    p_top = load.overburden_pressure(H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water,
+                                     gravity=p.gravity)
+    g_east, g_north = load.driving_gradient(p_top, z_top, geom, rho_channel=p.rho_channel,
+                                            gravity=p.gravity)
+    note("channel")
+    sol = channel_flow(g_east, g_north, h, p.viscosity, wall_east=p.wall_east,
+                       wall_north=p.wall_north)
+    note("divergence")
+    thickening = -divergence(sol.flux_east, sol.flux_north, geom)
+    uplift = load.uplift_rate(thickening, H, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle,
+                              rho_water=p.rho_water)
+    magnitude = np.hypot(sol.flux_east, sol.flux_north)
+    direction = azimuth(sol.flux_east, sol.flux_north, geom)
+    si = {
+        "crust_thickness": T, "channel_top_depth": z_top, "overburden_pressure": p_top,
+        "drive_east": g_east, "drive_north": g_north,
+        "flux_magnitude": magnitude, "flux_azimuth": direction,
+        "thickening_rate": thickening, "uplift_rate": uplift,
+    }
+    si.update(sol.as_dict())
+    live = valid & np.isfinite(g_east) & np.isfinite(g_north)
+    data_vars = {}
+    for name, var in VARIABLES.items():
+        values = np.asarray(si[name])
+        if var.flag:
+            values = np.where(live, values.astype("float64"), np.nan)
+        else:
+            values = np.where(live if name not in ("crust_thickness", "channel_top_depth",
+                                                   "overburden_pressure") else valid,
+                              values * var.factor, np.nan)
+        attrs = {"long_name": var.long_name, "units": var.units}
+        if var.flag:
+            attrs.update(flag_values=np.array([0, 1], dtype="int8"),
+                         flag_meanings="no_backflow backflow")
+        data_vars[name] = (("y", "x"), np.broadcast_to(values, H.shape).copy(), attrs)
+    ds = xr.Dataset(data_vars, coords={"y": topography.y.values, "x": topography.x.values})
+    for coord in ("x", "y"):
+        ds[coord].attrs.update(topography[coord].attrs)
+    ds = ds.rio.write_crs(crs).rio.write_coordinate_system()
+    ds = ds.rio.write_transform(topography.rio.transform())
+    ds.attrs.update({
+        "title": "crustflow channel-flow fields",
+        "crustflow_version": __version__,
+        "parameters_SI": repr({k: v for k, v in vars(p).items()}),
+        "caution": CAUTION,
+    })
+    return ds
+
+
+#: One-line caution carried by every output.
+CAUTION = ("Research estimate of a simplified model (thin channel, rigid walls, lithostatic load, "
+           "Newtonian); no basis for hazard or engineering decisions without local, licensed review.")
+
+
+def solve(scenario: Scenario, *, stage: Callable[[str], None] | None = None,
+          timings: dict | None = None) -> xr.Dataset:
+    """Read the grids a scenario names and compute the channel-flow fields.
+
+    Parameters
+    ----------
+    scenario : Scenario
+        From :func:`crustflow.load_scenario` or :func:`crustflow.scenario_from_dict`.
+    stage : callable, optional
+        Called with a short stage name as each stage starts.
+    timings : dict, optional
+        Filled with wall time (s) per stage.
+
+    Returns
+    -------
+    xarray.Dataset
+        As :func:`compute_fields`, with the scenario title and input provenance in the attributes.
+    """
+    from .grids import read_inputs
+
+    clock = {"name": None, "start": time.perf_counter()}
+    times = timings if timings is not None else {}
+
+    def note(name: str) -> None:
+        now = time.perf_counter()
+        if clock["name"] is not None:
+            times[clock["name"]] = times.get(clock["name"], 0.0) + now - clock["start"]
+        clock.update(name=name, start=now)
+        if stage is not None:
+            stage(name)
+
+    note("read grids")
+    grids = read_inputs(scenario)
+    ds = compute_fields(grids.topography, parameters=scenario.parameters,
+                        crust_thickness=grids.crust_thickness, moho_depth=grids.moho_depth,
+                        stage=note)
+    note("done")
+    times.pop("done", None)
+    ds.attrs["title"] = scenario.title
+    ds.attrs["crustflow_inputs"] = json.dumps(grids.provenance)
+    return ds

@@ -1,0 +1,83 @@
+"""Figures: the flux map.
+
+Perceptually uniform colour map (matplotlib's ``cividis``), arrows for the flux direction, a colour
+bar with units, axes in the grid's own coordinates, the scenario title and a one-line caution.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+__all__ = ["flux_map", "arrow_stride"]
+
+#: Number of arrows across the wider side of the map. Common practice, no source.
+ARROWS_ACROSS = 25
+
+
+def arrow_stride(shape: tuple[int, int], across: int = ARROWS_ACROSS) -> int:
+    """Stride in cells between arrows so that about ``across`` arrows span the wider side."""
+    return max(1, int(round(max(shape) / across)))
+
+
+def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi: int = 150) -> Path:
+    """Draw flux magnitude with direction arrows and save it as PNG.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Holds ``flux_magnitude``, ``flux_east`` and ``flux_north`` (m2 yr-1) on (y, x).
+    path : path
+        Destination PNG.
+    title : str, optional
+        Defaults to the dataset's ``title`` attribute.
+    dpi : int
+        Resolution.
+
+    Returns
+    -------
+    Path
+    """
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    from .model import CAUTION
+
+    crs = ds.rio.crs
+    geographic = bool(crs is not None and crs.is_geographic)
+    scale = 1.0 if geographic else 1e-3
+    unit = "degrees" if geographic else "km"
+    x = ds.x.values * scale
+    y = ds.y.values * scale
+    mag = ds["flux_magnitude"].values
+    fig, ax = plt.subplots(figsize=(8, 6.5), layout="constrained")
+    dx, dy = abs(x[1] - x[0]), abs(y[1] - y[0])
+    extent = (x.min() - dx / 2, x.max() + dx / 2, y.min() - dy / 2, y.max() + dy / 2)
+    image = ax.imshow(mag, extent=extent, origin="upper" if y[0] > y[-1] else "lower",
+                      cmap="cividis", interpolation="nearest")
+    bar = fig.colorbar(image, ax=ax, shrink=0.85)
+    bar.set_label(f"channel flux per unit width ({ds['flux_magnitude'].attrs.get('units', '')})"
+                  .replace("m2 yr-1", "m²/yr"))
+    step = arrow_stride(mag.shape)
+    sl = (slice(step // 2, None, step), slice(step // 2, None, step))
+    qe, qn = ds["flux_east"].values[sl], ds["flux_north"].values[sl]
+    xx, yy = np.meshgrid(x[sl[1]], y[sl[0]])
+    norm = np.hypot(qe, qn)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ue, un = np.where(norm > 0, qe / norm, 0.0), np.where(norm > 0, qn / norm, 0.0)
+    ax.quiver(xx, yy, ue, un, color="white", edgecolor="black", linewidth=0.3, pivot="middle",
+              scale=ARROWS_ACROSS * 1.3, width=0.003)
+    ax.set_xlabel("longitude (degrees)" if geographic else f"x ({unit})")
+    ax.set_ylabel("latitude (degrees)" if geographic else f"y ({unit})")
+    ax.set_aspect(1.0 / np.cos(np.deg2rad(np.nanmean(y))) if geographic else "equal")
+    ax.set_title(title or ds.attrs.get("title", "crustflow"))
+    fig.text(0.01, 0.005, "Arrows: flux direction. " + CAUTION, fontsize=6, ha="left", va="bottom",
+             wrap=True)
+    path = Path(path)
+    fig.savefig(path, dpi=dpi)
+    plt.close(fig)
+    return path
