@@ -17,6 +17,7 @@ from importlib import metadata
 from pathlib import Path
 
 import numpy as np
+import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from .errors import CrustflowInputError

@@ -13,6 +13,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
+import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from . import __version__, load
@@ -236,7 +237,7 @@ def solve(scenario: Scenario, *, stage: Callable[[str], None] | None = None,
         if clock["name"] is not None:
             times[clock["name"]] = times.get(clock["name"], 0.0) + now - clock["start"]
         clock.update(name=name, start=now)
-        if stage is not None:
+        if stage is not None and name != "done":
             stage(name)
 
     note("read grids")

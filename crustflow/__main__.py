@@ -1,0 +1,7 @@
+"""``python -m crustflow``: the same as the ``crustflow`` command."""
+
+import sys
+
+from .cli import main
+
+sys.exit(main())
