@@ -179,6 +179,10 @@ class GridGeometry:
         Required for geographic grids (taken from ``crs`` when omitted).
     crs : pyproj.CRS or None
         The grid's CRS; may be None for a projected grid (then no meridian convergence).
+    spacing : tuple of float or None
+        Signed (x, y) steps, m or degrees, when known exactly (e.g. from a raster's transform);
+        default: from the coordinates. Giving them makes results on a strip of rows identical,
+        bit for bit, to those on the whole grid.
 
     Notes
     -----
@@ -190,6 +194,7 @@ class GridGeometry:
     y: np.ndarray
     ellipsoid: Ellipsoid | None = None
     crs: object | None = None
+    spacing: tuple[float, float] | None = None
 
     def __post_init__(self):
         if self.kind not in GRID_KINDS:
@@ -221,15 +226,15 @@ class GridGeometry:
     @property
     def dx(self) -> float:
         """Signed step of x from one column to the next, m or degrees."""
-        return _step(self.x)
+        return float(self.spacing[0]) if self.spacing is not None else _step(self.x)
 
     @property
     def dy(self) -> float:
         """Signed step of y from one row to the next, m or degrees."""
-        return _step(self.y)
+        return float(self.spacing[1]) if self.spacing is not None else _step(self.y)
 
 
-def grid_geometry(x, y, crs) -> GridGeometry:
+def grid_geometry(x, y, crs, *, spacing: tuple[float, float] | None = None) -> GridGeometry:
     """Build and validate the geometry of a regular grid from its coordinates and CRS.
 
     Parameters
@@ -239,6 +244,8 @@ def grid_geometry(x, y, crs) -> GridGeometry:
         degrees (geographic CRS). Regular spacing, at least 2 cells each, either order.
     crs : pyproj.CRS or any input of ``pyproj.CRS.from_user_input``
         The grid's CRS; its kind decides the grid kind.
+    spacing : tuple of float, optional
+        Signed (x, y) steps when known exactly (see :class:`GridGeometry`).
 
     Returns
     -------
@@ -274,7 +281,7 @@ def grid_geometry(x, y, crs) -> GridGeometry:
                 f"{wanted}s: reproject the grid to a {wanted}-based CRS"
             )
     ellipsoid = Ellipsoid.from_crs(horizontal) if horizontal.ellipsoid is not None else None
-    return GridGeometry(kind=kind, x=x, y=y, ellipsoid=ellipsoid, crs=crs)
+    return GridGeometry(kind=kind, x=x, y=y, ellipsoid=ellipsoid, crs=crs, spacing=spacing)
 
 
 def cell_spacings(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
