@@ -50,52 +50,55 @@ class Progress:
             print(f"crustflow: {text}", file=sys.stderr, flush=True)
 
 
-def _run(scenario_path: Path, out: Path, quiet: bool) -> int:
-    from .export import base_manifest, check_out_dir, write_outputs
-    from .model import solve
+def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = None) -> int:
+    from .export import atomic_folder, base_manifest, write_manifest
     from .scenario import load_scenario
+    from .stream import run_strips
 
     began = time.perf_counter()
     scenario = load_scenario(scenario_path)
-    check_out_dir(out.expanduser().resolve(), scenario.input_paths)
     progress = Progress(quiet)
     timings: dict[str, float] = {}
-    ds = solve(scenario, stage=progress, timings=timings)
-    write_stage = {"name": None, "t": time.perf_counter()}
+    clock = {"name": None, "t": time.perf_counter()}
 
     def note(name: str) -> None:
         now = time.perf_counter()
-        if write_stage["name"]:
-            timings[write_stage["name"]] = now - write_stage["t"]
-        write_stage.update(name=name, t=now)
+        if clock["name"]:
+            timings[clock["name"]] = timings.get(clock["name"], 0.0) + now - clock["t"]
+        clock.update(name=name, t=now)
         progress(name)
 
-    import json
+    with atomic_folder(out, scenario.input_paths) as tmp:
+        result = run_strips(scenario, tmp, strip_rows=strip_rows, stage=note)
+        written = result["written"]
+        if result["figure"] is not None:
+            from .plot import flux_map
 
-    manifest = base_manifest(scenario, timings, json.loads(ds.attrs.get("crustflow_inputs", "{}")))
-    where = write_outputs(ds, out, manifest=manifest, variables=scenario.variables,
-                          formats=scenario.formats, inputs=scenario.input_paths, stage=note)
-    progress.finish()
+            note("draw figure")
+            flux_map(result["figure"], tmp / "flux_map.png", title=scenario.title)
+            written.append("flux_map.png")
+        note("write manifest")
+        manifest = base_manifest(scenario, timings, result["provenance"])
+        manifest["grid"] = {"shape": result["shape"], "strip_rows": result["strip_rows"]}
+        write_manifest(tmp, manifest, written)
+        progress.finish()
     if not quiet:
-        print(f"crustflow: wrote {where} in {time.perf_counter() - began:.1f} s", file=sys.stderr)
-        _summary(ds)
+        print(f"crustflow: wrote {out.expanduser().resolve()} in "
+              f"{time.perf_counter() - began:.1f} s", file=sys.stderr)
+        _summary(result)
     return 0
 
 
-def _summary(ds) -> None:
-    import numpy as np
+def _summary(result: dict) -> None:
+    from .model import VARIABLES
 
-    def rng(name: str) -> str:
-        v = ds[name].values
-        v = v[np.isfinite(v)]
-        unit = ds[name].attrs.get("units", "")
-        return f"{v.min():.3g} to {v.max():.3g} {unit}" if v.size else "no valid cells"
-
-    print(f"  flux magnitude   {rng('flux_magnitude')}")
-    print(f"  thickening rate  {rng('thickening_rate')}")
-    print(f"  uplift rate      {rng('uplift_rate')}")
-    back = ds["backflow"].values
-    print(f"  backflow cells   {int(np.nansum(back))} of {int(np.isfinite(back).sum())}")
+    for name, label in (("flux_magnitude", "flux magnitude"), ("thickening_rate", "thickening rate"),
+                        ("uplift_rate", "uplift rate")):
+        lo, hi = result["ranges"][name]
+        unit = VARIABLES[name].units
+        print(f"  {label:<16} {lo:.3g} to {hi:.3g} {unit}" if lo <= hi else
+              f"  {label:<16} no valid cells")
+    print(f"  backflow cells   {result['backflow_cells']} of {result['valid_cells']}")
 
 
 def _check(scenario_path: Path) -> int:
@@ -160,6 +163,8 @@ def build_parser() -> argparse.ArgumentParser:
                      help="output folder (default: ./crustflow_out); replaced if it holds an "
                      "earlier run")
     run.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    run.add_argument("--strip-rows", type=int, default=None, metavar="N",
+                     help="rows per strip (default: about 0.5 M cells per strip); sets peak memory")
     demo = sub.add_parser("demo", help="run the bundled sample scenario",
                           description="Run the bundled sample scenario (an invented plateau with a "
                           "steep and a gentle margin, part of it offshore).\n\n" + CAUTION_HELP,
@@ -187,7 +192,9 @@ def main(argv: list[str] | None = None) -> int:
     warnings.formatwarning = lambda msg, cat, *a, **k: f"crustflow: warning: {msg}\n"
     try:
         if args.command == "run":
-            return _run(args.scenario, args.out, args.quiet)
+            if args.strip_rows is not None and args.strip_rows < 1:
+                raise CrustflowInputError("--strip-rows must be a positive whole number, e.g. 256")
+            return _run(args.scenario, args.out, args.quiet, args.strip_rows)
         if args.command == "demo":
             return _demo(args.out, args.quiet, args.scenario)
         if args.command == "check":

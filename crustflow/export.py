@@ -12,6 +12,8 @@ import platform
 import shutil
 import sys
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
@@ -22,7 +24,8 @@ import xarray as xr
 
 from .errors import CrustflowInputError
 
-__all__ = ["write_netcdf", "write_geotiff", "write_outputs", "package_versions", "check_out_dir"]
+__all__ = ["write_netcdf", "write_geotiff", "write_outputs", "package_versions", "check_out_dir",
+           "atomic_folder", "write_manifest", "NetcdfWriter", "GeotiffWriter", "base_manifest"]
 
 #: Packages whose versions go into the run manifest.
 _PACKAGES = ("crustflow", "numpy", "scipy", "xarray", "rioxarray", "rasterio", "pyproj", "dask",
@@ -53,6 +56,136 @@ def _file_variables(ds: xr.Dataset, variables) -> list[str]:
     return [v for v in (variables or ds.data_vars) if v in ds.data_vars and v != "spatial_ref"]
 
 
+def _cf_layout(x: np.ndarray, y: np.ndarray, crs, transform) -> tuple[dict, dict, dict]:
+    """CF attributes of x, y and the ``spatial_ref`` grid mapping, as rioxarray writes them."""
+    import rioxarray  # noqa: F401  (registers the .rio accessor)
+
+    head = xr.Dataset(coords={"y": y[:2], "x": x[:2]})
+    head = head.rio.write_crs(crs).rio.write_coordinate_system()
+    mapping = dict(head.spatial_ref.attrs)
+    mapping["GeoTransform"] = " ".join(str(v) for v in transform.to_gdal())
+    return dict(head.x.attrs), dict(head.y.attrs), mapping
+
+
+class NetcdfWriter:
+    """Writes variables into a CF-1.8 NetCDF file strip by strip (float32, zlib, grid_mapping).
+
+    Parameters
+    ----------
+    path : path
+        Destination ``.nc`` file.
+    x, y : ndarray
+        Cell-centre coordinates (y descending).
+    crs, transform
+        The grid's CRS (rasterio/pyproj) and north-up affine transform.
+    variables : dict
+        Name -> attributes (``long_name``, ``units``, optional ``flag_values``/``flag_meanings``).
+    attrs : dict
+        Global attributes.
+    """
+
+    def __init__(self, path, x, y, crs, transform, variables: dict, attrs: dict) -> None:
+        import netCDF4
+
+        self.nc = netCDF4.Dataset(path, "w", format="NETCDF4")
+        nc = self.nc
+        nc.setncatts({k: v for k, v in attrs.items() if isinstance(v, str | int | float)})
+        nc.createDimension("y", len(y))
+        nc.createDimension("x", len(x))
+        x_attrs, y_attrs, mapping = _cf_layout(x, y, crs, transform)
+        for name, values, cattrs in (("y", y, y_attrs), ("x", x, x_attrs)):
+            var = nc.createVariable(name, "f8", (name,))
+            var[:] = values
+            var.setncatts(cattrs)
+        ref = nc.createVariable("spatial_ref", "i4")
+        ref.setncatts(mapping)
+        chunks = (min(256, len(y)), min(256, len(x)))
+        self.flags = set()
+        for name, vattrs in variables.items():
+            flag = "flag_values" in vattrs
+            if flag:
+                self.flags.add(name)
+                var = nc.createVariable(name, "i1", ("y", "x"), zlib=True, complevel=4,
+                                        chunksizes=chunks, fill_value=np.int8(-1))
+            else:
+                var = nc.createVariable(name, "f4", ("y", "x"), zlib=True, complevel=4,
+                                        chunksizes=chunks, fill_value=np.float32(np.nan))
+            var.set_auto_maskandscale(False)
+            var.setncatts({k: v for k, v in vattrs.items() if k != "caution"})
+            var.grid_mapping = "spatial_ref"
+
+    def write_rows(self, row0: int, arrays: dict[str, np.ndarray]) -> None:
+        """Write rows starting at ``row0`` for each variable given."""
+        for name, values in arrays.items():
+            if name in self.flags:
+                data = np.where(np.isfinite(values), values, -1).astype("int8")
+            else:
+                data = values.astype("float32")
+            self.nc.variables[name][row0:row0 + data.shape[0], :] = data
+
+    def close(self) -> None:
+        """Close the file."""
+        self.nc.close()
+
+
+class GeotiffWriter:
+    """Writes one variable as a tiled, DEFLATE-compressed single-band GeoTIFF, strip by strip.
+
+    Float variables are float32 with NaN nodata; flag variables are uint8 with nodata 255. The band
+    description is the variable's ``long_name`` and the band unit its ``units``.
+    """
+
+    def __init__(self, path, *, crs, transform, height: int, width: int, attrs: dict) -> None:
+        import rasterio
+
+        self.flag = "flag_values" in attrs
+        if self.flag:
+            dtype, nodata, predictor = "uint8", 255, 2
+        else:
+            dtype, nodata, predictor = "float32", float("nan"), 3
+        block = 256 if min(height, width) >= 256 else 16
+        self.dst = rasterio.open(
+            path, "w", driver="GTiff", width=width, height=height, count=1, dtype=dtype, crs=crs,
+            transform=transform, nodata=nodata, compress="deflate", predictor=predictor,
+            tiled=True, blockxsize=block, blockysize=block, num_threads="ALL_CPUS")
+        self.dst.set_band_description(1, attrs.get("long_name", ""))
+        self.dst.units = (attrs.get("units", ""),)
+        self.dst.update_tags(1, units=attrs.get("units", ""), long_name=attrs.get("long_name", ""))
+        self.dst.update_tags(source="crustflow", caution=attrs.get("caution", ""))
+
+    def write_rows(self, row0: int, values: np.ndarray) -> None:
+        """Write rows starting at ``row0``."""
+        from rasterio.windows import Window
+
+        if self.flag:
+            data = np.where(np.isfinite(values), values, 255).astype("uint8")
+        else:
+            data = values.astype("float32")
+        self.dst.write(data, 1, window=Window(0, row0, data.shape[1], data.shape[0]))
+
+    def close(self) -> None:
+        """Close the file."""
+        self.dst.close()
+
+
+def netcdf_attrs(title: str, scenario_text: str = "") -> dict:
+    """Global attributes of ``fields.nc``."""
+    from . import __version__
+    from .model import CAUTION
+
+    return {
+        "Conventions": "CF-1.8",
+        "title": title,
+        "institution": "",
+        "source": f"crustflow {__version__}",
+        "history": f"{datetime.now(UTC).isoformat(timespec='seconds')} crustflow run",
+        "comment": "Rates use the Julian year (1 yr = 365.25 d).",
+        "caution": CAUTION,
+        "crustflow_version": __version__,
+        "scenario": scenario_text,
+    }
+
+
 def write_netcdf(ds: xr.Dataset, path: str | Path, *, variables=None, attrs: dict | None = None) -> None:
     """Write fields as CF-1.8 NetCDF (float32, zlib, CRS through ``grid_mapping``).
 
@@ -68,63 +201,24 @@ def write_netcdf(ds: xr.Dataset, path: str | Path, *, variables=None, attrs: dic
         Extra global attributes (scenario text, provenance).
     """
     names = _file_variables(ds, variables)
-    out = ds[names].copy()
-    crs = ds.rio.crs
-    out = out.rio.write_crs(crs).rio.write_coordinate_system()
-    encoding = {}
-    for name in names:
-        flag = "flag_values" in out[name].attrs
-        if flag:
-            out[name] = out[name].fillna(-1).astype("int8")
-            out[name].attrs.update(ds[name].attrs)
-            encoding[name] = {"dtype": "int8", "_FillValue": np.int8(-1), "zlib": True,
-                              "complevel": 4}
-        else:
-            encoding[name] = {"dtype": "float32", "_FillValue": np.float32(np.nan), "zlib": True,
-                              "complevel": 4}
-        out[name].attrs["grid_mapping"] = "spatial_ref"
-        out[name].encoding = {}
-    for coord in ("x", "y"):
-        encoding[coord] = {"_FillValue": None}
-    encoding["spatial_ref"] = {"dtype": "int32"}
-    out.attrs = {k: v for k, v in ds.attrs.items() if isinstance(v, str | int | float)}
-    out.attrs.update({
-        "Conventions": "CF-1.8",
-        "source": f"crustflow {ds.attrs.get('crustflow_version', '')}".strip(),
-        "history": f"{datetime.now(UTC).isoformat(timespec='seconds')} crustflow run",
-        "comment": "Rates use the Julian year (1 yr = 365.25 d).",
-    })
-    out.attrs.update(attrs or {})
-    out.to_netcdf(path, encoding=encoding, format="NETCDF4")
+    glob = netcdf_attrs(ds.attrs.get("title", "crustflow"))
+    glob.update(attrs or {})
+    writer = NetcdfWriter(path, ds.x.values, ds.y.values, ds.rio.crs, ds.rio.transform(),
+                          {n: ds[n].attrs for n in names}, glob)
+    try:
+        writer.write_rows(0, {n: ds[n].values for n in names})
+    finally:
+        writer.close()
 
 
 def write_geotiff(da: xr.DataArray, path: str | Path, *, crs, transform) -> None:
-    """Write one variable as a tiled, DEFLATE-compressed single-band GeoTIFF.
-
-    Float variables are float32 with NaN nodata; flag variables are uint8 with nodata 255. The band
-    description is the variable's ``long_name`` and the band unit its ``units``.
-    """
-    import rasterio
-
-    flag = "flag_values" in da.attrs
-    values = np.asarray(da.values)
-    if flag:
-        data = np.where(np.isfinite(values), values, 255).astype("uint8")
-        dtype, nodata, predictor = "uint8", 255, 2
-    else:
-        data = values.astype("float32")
-        dtype, nodata, predictor = "float32", float("nan"), 3
-    height, width = data.shape
-    block = 256 if min(height, width) >= 256 else 16 * max(1, min(height, width) // 16)
-    profile = dict(driver="GTiff", width=width, height=height, count=1, dtype=dtype, crs=crs,
-                   transform=transform, nodata=nodata, compress="deflate", predictor=predictor,
-                   tiled=True, blockxsize=max(block, 16), blockysize=max(block, 16))
-    with rasterio.open(path, "w", **profile) as dst:
-        dst.write(data, 1)
-        dst.set_band_description(1, da.attrs.get("long_name", str(da.name)))
-        dst.units = (da.attrs.get("units", ""),)
-        dst.update_tags(1, units=da.attrs.get("units", ""), long_name=da.attrs.get("long_name", ""))
-        dst.update_tags(source="crustflow", caution=da.attrs.get("caution", ""))
+    """Write one variable (whole grid) as a GeoTIFF; see :class:`GeotiffWriter`."""
+    writer = GeotiffWriter(path, crs=crs, transform=transform, height=da.shape[0],
+                           width=da.shape[1], attrs=da.attrs)
+    try:
+        writer.write_rows(0, np.asarray(da.values))
+    finally:
+        writer.close()
 
 
 def check_out_dir(out: Path, inputs: list[Path]) -> None:
@@ -143,9 +237,49 @@ def check_out_dir(out: Path, inputs: list[Path]) -> None:
                                       "choose an empty or new folder")
 
 
+@contextmanager
+def atomic_folder(out: str | Path, inputs=()) -> Iterator[Path]:
+    """A temporary folder beside ``out`` that replaces ``out`` only if the block succeeds.
+
+    Parameters
+    ----------
+    out : path
+        The final output folder. An earlier crustflow run there is replaced as a whole.
+    inputs : sequence of path
+        Input files, which must not lie inside ``out``.
+
+    Yields
+    ------
+    Path
+        The temporary folder to write into. On any error it is removed and ``out`` is untouched.
+    """
+    out = Path(out).expanduser().resolve()
+    check_out_dir(out, list(inputs))
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        yield tmp
+        old = None
+        if out.exists():
+            old = out.parent / f".{out.name}.old-{os.getpid()}"
+            out.rename(old)
+        tmp.rename(out)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def write_manifest(folder: Path, manifest: dict, written: list[str]) -> None:
+    """Write ``run.json`` listing the outputs."""
+    manifest = dict(manifest, outputs=list(written) + [MANIFEST])
+    (Path(folder) / MANIFEST).write_text(json.dumps(manifest, indent=2, default=str) + "\n")
+
+
 def write_outputs(ds: xr.Dataset, out: str | Path, *, manifest: dict, variables=None,
                   formats=("netcdf", "geotiff", "figure"), inputs=(), stage=None) -> Path:
-    """Write a run's outputs into ``out`` atomically.
+    """Write the outputs of fields already in memory into ``out``, atomically.
 
     Parameters
     ----------
@@ -170,11 +304,7 @@ def write_outputs(ds: xr.Dataset, out: str | Path, *, manifest: dict, variables=
         The output folder.
     """
     note = stage or (lambda name: None)
-    out = Path(out).expanduser().resolve()
-    check_out_dir(out, list(inputs))
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
-    try:
+    with atomic_folder(out, inputs) as tmp:
         written = []
         names = _file_variables(ds, variables)
         if "netcdf" in formats:
@@ -186,7 +316,7 @@ def write_outputs(ds: xr.Dataset, out: str | Path, *, manifest: dict, variables=
             note("write GeoTIFF")
             crs, transform = ds.rio.crs, ds.rio.transform()
             for name in names:
-                da = ds[name]
+                da = ds[name].copy()
                 da.attrs["caution"] = ds.attrs.get("caution", "")
                 write_geotiff(da, tmp / f"{name}.tif", crs=crs, transform=transform)
                 written.append(f"{name}.tif")
@@ -197,19 +327,8 @@ def write_outputs(ds: xr.Dataset, out: str | Path, *, manifest: dict, variables=
             flux_map(ds, tmp / "flux_map.png")
             written.append("flux_map.png")
         note("write manifest")
-        manifest = dict(manifest, outputs=written + [MANIFEST])
-        (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2, default=str) + "\n")
-        old = None
-        if out.exists():
-            old = out.parent / f".{out.name}.old-{os.getpid()}"
-            out.rename(old)
-        tmp.rename(out)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return out
+        write_manifest(tmp, manifest, written)
+    return Path(out).expanduser().resolve()
 
 
 def base_manifest(scenario, timings: dict, provenance: dict | None = None) -> dict:

@@ -23,7 +23,8 @@ from .errors import CrustflowInputError
 from .maps import azimuth, divergence, grid_geometry
 from .scenario import ModelParameters, Scenario
 
-__all__ = ["Variable", "VARIABLES", "compute_fields", "solve"]
+__all__ = ["Variable", "VARIABLES", "compute_fields", "solve", "fields_si", "to_practical",
+           "variable_attrs", "crust_thickness_of", "ThinCrustCheck", "CAUTION"]
 
 
 @dataclass(frozen=True)
@@ -83,6 +84,119 @@ def _grid_crs(grid: xr.DataArray):
     return crs
 
 
+def crust_thickness_of(elevation, parameters: ModelParameters, *, crust_thickness=None,
+                       moho_depth=None):
+    """Crustal thickness T (m) from whichever input the run has: T itself, Moho depth, or Airy."""
+    p = parameters
+    if crust_thickness is not None:
+        return crust_thickness
+    if moho_depth is not None:
+        return load.crust_thickness_from_moho(elevation, moho_depth)
+    if p.reference_thickness is None:
+        raise CrustflowInputError("no crust_thickness or moho_depth grid and no "
+                                  "reference_thickness for Airy isostasy; give one of them")
+    return load.crust_thickness_airy(elevation, p.reference_thickness, p.rho_crust, p.rho_mantle,
+                                     p.rho_water)
+
+
+class ThinCrustCheck:
+    """Counts cells where the channel is not thinner than the crust; :meth:`finish` raises."""
+
+    def __init__(self, channel_thickness: float) -> None:
+        self.h, self.cells, self.thinnest = channel_thickness, 0, np.inf
+
+    def update(self, crust_thickness: np.ndarray) -> None:
+        """Add a strip of crustal thickness values, m."""
+        bad = np.isfinite(crust_thickness) & (crust_thickness <= self.h)
+        self.cells += int(bad.sum())
+        finite = crust_thickness[np.isfinite(crust_thickness)]
+        if finite.size:
+            self.thinnest = min(self.thinnest, float(finite.min()))
+
+    def finish(self) -> None:
+        """Raise :class:`CrustflowInputError` if any cell failed."""
+        if self.cells:
+            raise CrustflowInputError(
+                f"channel.thickness ({self.h / 1e3:g} km) is not less than the crustal thickness in "
+                f"{self.cells} cells (thinnest crust {self.thinnest / 1e3:.3g} km); give a thinner "
+                "channel or check the thickness grid")
+
+
+def fields_si(elevation: np.ndarray, crust_thickness: np.ndarray, geometry, parameters:
+              ModelParameters, *, wanted=None) -> dict[str, np.ndarray]:
+    """Every output variable in SI units on one block of rows (numpy arrays).
+
+    Parameters
+    ----------
+    elevation, crust_thickness : ndarray
+        H and T, m, NaN for nodata, on ``geometry``'s cells (a whole grid, or a strip of rows with
+        two halo rows on each inner side).
+    geometry : crustflow.maps.GridGeometry
+    parameters : ModelParameters
+    wanted : set of str, optional
+        Variables to compute (default: all of :data:`VARIABLES`); others are left out.
+
+    Returns
+    -------
+    dict
+        Name -> array in SI (m, Pa, Pa/m, m^2/s, m/s, degrees, 1), NaN where the cell depends on
+        nodata.
+    """
+    p = parameters
+    wanted = set(VARIABLES) if wanted is None else set(wanted)
+    valid = np.isfinite(elevation) & np.isfinite(crust_thickness)
+    H = np.where(valid, elevation, np.nan)
+    T = np.where(valid, crust_thickness, np.nan)
+    h = p.channel_thickness
+    z_top = load.channel_top_depth(H, T, h)
+    p_top = load.overburden_pressure(H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water,
+                                     gravity=p.gravity)
+    g_east, g_north = load.driving_gradient(p_top, z_top, geometry, rho_channel=p.rho_channel,
+                                            gravity=p.gravity)
+    sol = channel_flow(g_east, g_north, h, p.viscosity, wall_east=p.wall_east,
+                       wall_north=p.wall_north)
+    live = valid & np.isfinite(g_east) & np.isfinite(g_north)
+    out = {"crust_thickness": T, "channel_top_depth": z_top, "overburden_pressure": p_top,
+           "drive_east": g_east, "drive_north": g_north}
+    out.update(sol.as_dict())
+    if wanted & {"thickening_rate", "uplift_rate"}:
+        thickening = -divergence(sol.flux_east, sol.flux_north, geometry)
+        out["thickening_rate"] = thickening
+        out["uplift_rate"] = load.uplift_rate(thickening, H, rho_channel=p.rho_channel,
+                                              rho_mantle=p.rho_mantle, rho_water=p.rho_water)
+    if "flux_magnitude" in wanted:
+        out["flux_magnitude"] = np.hypot(sol.flux_east, sol.flux_north)
+    if "flux_azimuth" in wanted:
+        out["flux_azimuth"] = azimuth(sol.flux_east, sol.flux_north, geometry)
+    result = {}
+    for name in VARIABLES:
+        if name not in wanted:
+            continue
+        values = np.asarray(out[name])
+        if VARIABLES[name].flag:
+            values = values.astype("float64")
+        mask = valid if name in ("crust_thickness", "channel_top_depth",
+                                 "overburden_pressure") else live
+        result[name] = np.where(mask, values, np.nan)
+    return result
+
+
+def to_practical(name: str, values: np.ndarray) -> np.ndarray:
+    """Convert a variable from SI to the practical unit of :data:`VARIABLES`."""
+    factor = VARIABLES[name].factor
+    return values if factor == 1.0 else values * factor
+
+
+def variable_attrs(name: str) -> dict:
+    """CF attributes of a variable (``long_name``, ``units``, flag attributes)."""
+    var = VARIABLES[name]
+    attrs = {"long_name": var.long_name, "units": var.units}
+    if var.flag:
+        attrs.update(flag_values=np.array([0, 1], dtype="int8"),
+                     flag_meanings="no_backflow backflow")
+    return attrs
+
+
 def compute_fields(
     topography: xr.DataArray,
     *,
@@ -120,85 +234,43 @@ def compute_fields(
     note = stage or (lambda name: None)
     p = parameters
     crs = _grid_crs(topography)
-    note("geometry")
-    if topography.y.values[0] < topography.y.values[-1]:
+    note("compute")
+    flip = topography.y.values[0] < topography.y.values[-1]
+    if flip:  # rows south to north: work north up
         topography = topography.isel(y=slice(None, None, -1))
         crust_thickness = None if crust_thickness is None else crust_thickness.sortby("y", False)
         moho_depth = None if moho_depth is None else moho_depth.sortby("y", False)
-    geom = grid_geometry(topography.x.values, topography.y.values, crs)
+    # The stored transform (as read from the file) gives the exact spacing; recompute it from the
+    # coordinates only when there is none or the rows were flipped here.
+    transform = topography.rio.transform(recalc=flip)
+    geom = grid_geometry(topography.x.values, topography.y.values, crs,
+                         spacing=(transform.a, transform.e))
     H = np.asarray(topography.values, dtype="float64")
+    grids = {}
     for other, key in ((crust_thickness, "crust_thickness"), (moho_depth, "moho_depth")):
-        if other is not None and (other.shape != H.shape
-                                  or not np.allclose(other.x.values, topography.x.values)
-                                  or not np.allclose(other.y.values, topography.y.values)):
+        if other is None:
+            continue
+        if (other.shape != H.shape or not np.allclose(other.x.values, topography.x.values)
+                or not np.allclose(other.y.values, topography.y.values)):
             raise CrustflowInputError(f"{key} is not on the topography grid's cells; align it first "
-                                      "(crustflow.grids.align_to)")
-    note("load")
-    if crust_thickness is not None:
-        T = np.asarray(crust_thickness.values, dtype="float64")
-    elif moho_depth is not None:
-        T = load.crust_thickness_from_moho(H, np.asarray(moho_depth.values, dtype="float64"))
-    else:
-        if p.reference_thickness is None:
-            raise CrustflowInputError("no crust_thickness or moho_depth grid and no "
-                                      "reference_thickness for Airy isostasy; give one of them")
-        T = load.crust_thickness_airy(H, p.reference_thickness, p.rho_crust, p.rho_mantle,
-                                      p.rho_water)
-    valid = np.isfinite(H) & np.isfinite(T)
-    h = p.channel_thickness
-    thin = valid & (T <= h)
-    if thin.any():
-        raise CrustflowInputError(
-            f"channel.thickness ({h / 1e3:g} km) is not less than the crustal thickness in "
-            f"{int(thin.sum())} cells (thinnest crust {np.nanmin(np.where(valid, T, np.nan)) / 1e3:.3g}"
-            " km); give a thinner channel or check the thickness grid")
-    T = np.where(valid, T, np.nan)
-    H = np.where(valid, H, np.nan)
-    z_top = load.channel_top_depth(H, T, h)
-    p_top = load.overburden_pressure(H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water,
-                                     gravity=p.gravity)
-    g_east, g_north = load.driving_gradient(p_top, z_top, geom, rho_channel=p.rho_channel,
-                                            gravity=p.gravity)
-    note("channel")
-    sol = channel_flow(g_east, g_north, h, p.viscosity, wall_east=p.wall_east,
-                       wall_north=p.wall_north)
-    note("divergence")
-    thickening = -divergence(sol.flux_east, sol.flux_north, geom)
-    uplift = load.uplift_rate(thickening, H, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle,
-                              rho_water=p.rho_water)
-    magnitude = np.hypot(sol.flux_east, sol.flux_north)
-    direction = azimuth(sol.flux_east, sol.flux_north, geom)
-    si = {
-        "crust_thickness": T, "channel_top_depth": z_top, "overburden_pressure": p_top,
-        "drive_east": g_east, "drive_north": g_north,
-        "flux_magnitude": magnitude, "flux_azimuth": direction,
-        "thickening_rate": thickening, "uplift_rate": uplift,
-    }
-    si.update(sol.as_dict())
-    live = valid & np.isfinite(g_east) & np.isfinite(g_north)
-    data_vars = {}
-    for name, var in VARIABLES.items():
-        values = np.asarray(si[name])
-        if var.flag:
-            values = np.where(live, values.astype("float64"), np.nan)
-        else:
-            values = np.where(live if name not in ("crust_thickness", "channel_top_depth",
-                                                   "overburden_pressure") else valid,
-                              values * var.factor, np.nan)
-        attrs = {"long_name": var.long_name, "units": var.units}
-        if var.flag:
-            attrs.update(flag_values=np.array([0, 1], dtype="int8"),
-                         flag_meanings="no_backflow backflow")
-        data_vars[name] = (("y", "x"), np.broadcast_to(values, H.shape).copy(), attrs)
+                                      "(read both with crustflow.solve, or resample it)")
+        grids[key] = np.asarray(other.values, dtype="float64")
+    T = crust_thickness_of(H, p, **grids)
+    check = ThinCrustCheck(p.channel_thickness)
+    check.update(np.where(np.isfinite(H), T, np.nan))
+    check.finish()
+    si = fields_si(H, T, geom, p)
+    data_vars = {name: (("y", "x"), to_practical(name, si[name]), variable_attrs(name))
+                 for name in VARIABLES}
     ds = xr.Dataset(data_vars, coords={"y": topography.y.values, "x": topography.x.values})
     for coord in ("x", "y"):
         ds[coord].attrs.update(topography[coord].attrs)
     ds = ds.rio.write_crs(crs).rio.write_coordinate_system()
-    ds = ds.rio.write_transform(topography.rio.transform())
+    ds = ds.rio.write_transform(transform)
     ds.attrs.update({
         "title": "crustflow channel-flow fields",
         "crustflow_version": __version__,
-        "parameters_SI": repr({k: v for k, v in vars(p).items()}),
+        "parameters_SI": json.dumps(dict(vars(p))),
         "caution": CAUTION,
     })
     return ds
