@@ -83,8 +83,10 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
         write_manifest(tmp, manifest, written)
         progress.finish()
     if not quiet:
-        print(f"crustflow: wrote {out.expanduser().resolve()} in "
-              f"{time.perf_counter() - began:.1f} s", file=sys.stderr)
+        print(
+            f"crustflow: wrote {out.expanduser().resolve()} in {time.perf_counter() - began:.1f} s",
+            file=sys.stderr,
+        )
         _summary(result)
     return 0
 
@@ -92,12 +94,18 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
 def _summary(result: dict) -> None:
     from .model import VARIABLES
 
-    for name, label in (("flux_magnitude", "flux magnitude"), ("thickening_rate", "thickening rate"),
-                        ("uplift_rate", "uplift rate")):
+    for name, label in (
+        ("flux_magnitude", "flux magnitude"),
+        ("thickening_rate", "thickening rate"),
+        ("uplift_rate", "uplift rate"),
+    ):
         lo, hi = result["ranges"][name]
         unit = VARIABLES[name].units
-        print(f"  {label:<16} {lo:.3g} to {hi:.3g} {unit}" if lo <= hi else
-              f"  {label:<16} no valid cells")
+        print(
+            f"  {label:<16} {lo:.3g} to {hi:.3g} {unit}"
+            if lo <= hi
+            else f"  {label:<16} no valid cells"
+        )
     print(f"  backflow cells   {result['backflow_cells']} of {result['valid_cells']}")
 
 
@@ -113,24 +121,31 @@ def _check(scenario_path: Path) -> int:
     p = scenario.parameters
     topo = grids.topography
     print(f"scenario   {scenario.title}")
-    print(f"grid       {topo.sizes['x']} x {topo.sizes['y']} cells, CRS {topo.rio.crs.to_string()}, "
-          f"cell {abs(topo.rio.resolution()[0]):g} x {abs(topo.rio.resolution()[1]):g} "
-          f"{'degrees' if topo.rio.crs.is_geographic else 'm'}")
+    print(
+        f"grid       {topo.sizes['x']} x {topo.sizes['y']} cells, CRS {topo.rio.crs.to_string()}, "
+        f"cell {abs(topo.rio.resolution()[0]):g} x {abs(topo.rio.resolution()[1]):g} "
+        f"{'degrees' if topo.rio.crs.is_geographic else 'm'}"
+    )
     for key in ("topography", "crust_thickness", "moho_depth"):
         da = getattr(grids, key)
         if da is None:
             continue
         v = da.values[np.isfinite(da.values)]
-        print(f"{key:<16} {v.min():.6g} to {v.max():.6g} m, {da.size - v.size} nodata cells; "
-              f"{grids.provenance.get(key, {}).get('method', 'read')}")
+        print(
+            f"{key:<16} {v.min():.6g} to {v.max():.6g} m, {da.size - v.size} nodata cells; "
+            f"{grids.provenance.get(key, {}).get('method', 'read')}"
+        )
     notes = []
     if not 1e16 <= p.viscosity <= 1e24:
-        notes.append(f"viscosity {p.viscosity:.3g} Pa s lies outside 1e16-1e24 Pa s, unusual for a "
-                     "crustal channel")
+        notes.append(
+            f"viscosity {p.viscosity:.3g} Pa s lies outside 1e16-1e24 Pa s, unusual for a "
+            "crustal channel"
+        )
     if not 1e3 <= p.channel_thickness <= 60e3:
         notes.append(f"channel thickness {p.channel_thickness / 1e3:g} km lies outside 1-60 km")
-    compute_fields(topo, parameters=p, crust_thickness=grids.crust_thickness,
-                   moho_depth=grids.moho_depth)
+    compute_fields(
+        topo, parameters=p, crust_thickness=grids.crust_thickness, moho_depth=grids.moho_depth
+    )
     for text in notes:
         print(f"note: {text}")
     print("check passed: the scenario runs")
@@ -148,35 +163,59 @@ def _demo(out: Path, quiet: bool, scenario_name: str) -> int:
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
-        prog="crustflow", description=DESCRIPTION,
-        formatter_class=argparse.RawDescriptionHelpFormatter)
+        prog="crustflow",
+        description=DESCRIPTION,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
     parser.add_argument("--version", action="version", version=f"crustflow {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     common = dict(formatter_class=argparse.RawDescriptionHelpFormatter)
-    run = sub.add_parser("run", help="compute channel-flow maps for a scenario file",
-                         description="Compute channel-flow maps for a scenario file (TOML) and write "
-                         "fields.nc, one GeoTIFF per variable, flux_map.png and run.json.\n\n"
-                         + CAUTION_HELP, **common)
+    run = sub.add_parser(
+        "run",
+        help="compute channel-flow maps for a scenario file",
+        description="Compute channel-flow maps for a scenario file (TOML) and write "
+        "fields.nc, one GeoTIFF per variable, flux_map.png and run.json.\n\n" + CAUTION_HELP,
+        **common,
+    )
     run.add_argument("scenario", type=Path, help="scenario file (TOML)")
-    run.add_argument("--out", type=Path, default=Path("crustflow_out"),
-                     help="output folder (default: ./crustflow_out); replaced if it holds an "
-                     "earlier run")
+    run.add_argument(
+        "--out",
+        type=Path,
+        default=Path("crustflow_out"),
+        help="output folder (default: ./crustflow_out); replaced if it holds an earlier run",
+    )
     run.add_argument("--quiet", action="store_true", help="print nothing but errors")
-    run.add_argument("--strip-rows", type=int, default=None, metavar="N",
-                     help="rows per strip (default: about 0.5 M cells per strip); sets peak memory")
-    demo = sub.add_parser("demo", help="run the bundled sample scenario",
-                          description="Run the bundled sample scenario (an invented plateau with a "
-                          "steep and a gentle margin, part of it offshore).\n\n" + CAUTION_HELP,
-                          **common)
-    demo.add_argument("--out", type=Path, default=Path("demo_out"),
-                      help="output folder (default: ./demo_out)")
-    demo.add_argument("--scenario", default="plateau",
-                      help="which sample scenario: plateau (projected, default) or plateau-lonlat")
+    run.add_argument(
+        "--strip-rows",
+        type=int,
+        default=None,
+        metavar="N",
+        help="rows per strip (default: about 0.5 M cells per strip); sets peak memory",
+    )
+    demo = sub.add_parser(
+        "demo",
+        help="run the bundled sample scenario",
+        description="Run the bundled sample scenario (an invented plateau with a "
+        "steep and a gentle margin, part of it offshore).\n\n" + CAUTION_HELP,
+        **common,
+    )
+    demo.add_argument(
+        "--out", type=Path, default=Path("demo_out"), help="output folder (default: ./demo_out)"
+    )
+    demo.add_argument(
+        "--scenario",
+        default="plateau",
+        help="which sample scenario: plateau (projected, default) or plateau-lonlat",
+    )
     demo.add_argument("--quiet", action="store_true", help="print nothing but errors")
-    check = sub.add_parser("check", help="validate a scenario and its grids without writing anything",
-                           description="Validate a scenario file and its grids: sizes, CRS, value "
-                           "ranges and units sanity. Writes nothing.\n\n" + CAUTION_HELP, **common)
+    check = sub.add_parser(
+        "check",
+        help="validate a scenario and its grids without writing anything",
+        description="Validate a scenario file and its grids: sizes, CRS, value "
+        "ranges and units sanity. Writes nothing.\n\n" + CAUTION_HELP,
+        **common,
+    )
     check.add_argument("scenario", type=Path, help="scenario file (TOML)")
     return parser
 
@@ -208,8 +247,11 @@ def main(argv: list[str] | None = None) -> int:
     except Exception as exc:  # noqa: BLE001 - one line unless --debug
         if args.debug:
             raise
-        print(f"crustflow: internal error: {exc.__class__.__name__}: {exc} (rerun with --debug for "
-              "details and report it)", file=sys.stderr)
+        print(
+            f"crustflow: internal error: {exc.__class__.__name__}: {exc} (rerun with --debug for "
+            "details and report it)",
+            file=sys.stderr,
+        )
         return 1
     return 0
 

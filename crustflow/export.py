@@ -24,12 +24,34 @@ import xarray as xr
 
 from .errors import CrustflowInputError
 
-__all__ = ["write_netcdf", "write_geotiff", "write_outputs", "package_versions", "check_out_dir",
-           "atomic_folder", "write_manifest", "NetcdfWriter", "GeotiffWriter", "base_manifest"]
+__all__ = [
+    "write_netcdf",
+    "write_geotiff",
+    "write_outputs",
+    "package_versions",
+    "check_out_dir",
+    "atomic_folder",
+    "write_manifest",
+    "NetcdfWriter",
+    "GeotiffWriter",
+    "base_manifest",
+]
 
 #: Packages whose versions go into the run manifest.
-_PACKAGES = ("crustflow", "numpy", "scipy", "xarray", "rioxarray", "rasterio", "pyproj", "dask",
-             "matplotlib", "pint", "netCDF4", "geopandas")
+_PACKAGES = (
+    "crustflow",
+    "numpy",
+    "scipy",
+    "xarray",
+    "rioxarray",
+    "rasterio",
+    "pyproj",
+    "dask",
+    "matplotlib",
+    "pint",
+    "netCDF4",
+    "geopandas",
+)
 
 #: Marker file that says a folder is a crustflow output folder (safe to replace).
 MANIFEST = "run.json"
@@ -58,7 +80,6 @@ def _file_variables(ds: xr.Dataset, variables) -> list[str]:
 
 def _cf_layout(x: np.ndarray, y: np.ndarray, crs, transform) -> tuple[dict, dict, dict]:
     """CF attributes of x, y and the ``spatial_ref`` grid mapping, as rioxarray writes them."""
-    import rioxarray  # noqa: F401  (registers the .rio accessor)
 
     head = xr.Dataset(coords={"y": y[:2], "x": x[:2]})
     head = head.rio.write_crs(crs).rio.write_coordinate_system()
@@ -105,11 +126,25 @@ class NetcdfWriter:
             flag = "flag_values" in vattrs
             if flag:
                 self.flags.add(name)
-                var = nc.createVariable(name, "i1", ("y", "x"), zlib=True, complevel=4,
-                                        chunksizes=chunks, fill_value=np.int8(-1))
+                var = nc.createVariable(
+                    name,
+                    "i1",
+                    ("y", "x"),
+                    zlib=True,
+                    complevel=4,
+                    chunksizes=chunks,
+                    fill_value=np.int8(-1),
+                )
             else:
-                var = nc.createVariable(name, "f4", ("y", "x"), zlib=True, complevel=4,
-                                        chunksizes=chunks, fill_value=np.float32(np.nan))
+                var = nc.createVariable(
+                    name,
+                    "f4",
+                    ("y", "x"),
+                    zlib=True,
+                    complevel=4,
+                    chunksizes=chunks,
+                    fill_value=np.float32(np.nan),
+                )
             var.set_auto_maskandscale(False)
             var.setncatts({k: v for k, v in vattrs.items() if k != "caution"})
             var.grid_mapping = "spatial_ref"
@@ -121,7 +156,7 @@ class NetcdfWriter:
                 data = np.where(np.isfinite(values), values, -1).astype("int8")
             else:
                 data = values.astype("float32")
-            self.nc.variables[name][row0:row0 + data.shape[0], :] = data
+            self.nc.variables[name][row0 : row0 + data.shape[0], :] = data
 
     def close(self) -> None:
         """Close the file."""
@@ -145,9 +180,23 @@ class GeotiffWriter:
             dtype, nodata, predictor = "float32", float("nan"), 3
         block = 256 if min(height, width) >= 256 else 16
         self.dst = rasterio.open(
-            path, "w", driver="GTiff", width=width, height=height, count=1, dtype=dtype, crs=crs,
-            transform=transform, nodata=nodata, compress="deflate", predictor=predictor,
-            tiled=True, blockxsize=block, blockysize=block, num_threads="ALL_CPUS")
+            path,
+            "w",
+            driver="GTiff",
+            width=width,
+            height=height,
+            count=1,
+            dtype=dtype,
+            crs=crs,
+            transform=transform,
+            nodata=nodata,
+            compress="deflate",
+            predictor=predictor,
+            tiled=True,
+            blockxsize=block,
+            blockysize=block,
+            num_threads="ALL_CPUS",
+        )
         self.dst.set_band_description(1, attrs.get("long_name", ""))
         self.dst.units = (attrs.get("units", ""),)
         self.dst.update_tags(1, units=attrs.get("units", ""), long_name=attrs.get("long_name", ""))
@@ -186,7 +235,9 @@ def netcdf_attrs(title: str, scenario_text: str = "") -> dict:
     }
 
 
-def write_netcdf(ds: xr.Dataset, path: str | Path, *, variables=None, attrs: dict | None = None) -> None:
+def write_netcdf(
+    ds: xr.Dataset, path: str | Path, *, variables=None, attrs: dict | None = None
+) -> None:
     """Write fields as CF-1.8 NetCDF (float32, zlib, CRS through ``grid_mapping``).
 
     Parameters
@@ -203,8 +254,15 @@ def write_netcdf(ds: xr.Dataset, path: str | Path, *, variables=None, attrs: dic
     names = _file_variables(ds, variables)
     glob = netcdf_attrs(ds.attrs.get("title", "crustflow"))
     glob.update(attrs or {})
-    writer = NetcdfWriter(path, ds.x.values, ds.y.values, ds.rio.crs, ds.rio.transform(),
-                          {n: ds[n].attrs for n in names}, glob)
+    writer = NetcdfWriter(
+        path,
+        ds.x.values,
+        ds.y.values,
+        ds.rio.crs,
+        ds.rio.transform(),
+        {n: ds[n].attrs for n in names},
+        glob,
+    )
     try:
         writer.write_rows(0, {n: ds[n].values for n in names})
     finally:
@@ -213,8 +271,9 @@ def write_netcdf(ds: xr.Dataset, path: str | Path, *, variables=None, attrs: dic
 
 def write_geotiff(da: xr.DataArray, path: str | Path, *, crs, transform) -> None:
     """Write one variable (whole grid) as a GeoTIFF; see :class:`GeotiffWriter`."""
-    writer = GeotiffWriter(path, crs=crs, transform=transform, height=da.shape[0],
-                           width=da.shape[1], attrs=da.attrs)
+    writer = GeotiffWriter(
+        path, crs=crs, transform=transform, height=da.shape[0], width=da.shape[1], attrs=da.attrs
+    )
     try:
         writer.write_rows(0, np.asarray(da.values))
     finally:
@@ -227,14 +286,18 @@ def check_out_dir(out: Path, inputs: list[Path]) -> None:
     for path in inputs:
         path = Path(path).resolve()
         if out == path or out in path.parents:
-            raise CrustflowInputError(f"output folder {out} holds the input {path.name}; choose another "
-                                      "--out folder (inputs are never overwritten)")
+            raise CrustflowInputError(
+                f"output folder {out} holds the input {path.name}; choose another "
+                "--out folder (inputs are never overwritten)"
+            )
     if out.exists():
         if not out.is_dir():
             raise CrustflowInputError(f"--out {out} is a file; name a folder")
         if any(out.iterdir()) and not (out / MANIFEST).is_file():
-            raise CrustflowInputError(f"--out folder {out} is not empty and holds no crustflow run; "
-                                      "choose an empty or new folder")
+            raise CrustflowInputError(
+                f"--out folder {out} is not empty and holds no crustflow run; "
+                "choose an empty or new folder"
+            )
 
 
 @contextmanager
@@ -277,8 +340,16 @@ def write_manifest(folder: Path, manifest: dict, written: list[str]) -> None:
     (Path(folder) / MANIFEST).write_text(json.dumps(manifest, indent=2, default=str) + "\n")
 
 
-def write_outputs(ds: xr.Dataset, out: str | Path, *, manifest: dict, variables=None,
-                  formats=("netcdf", "geotiff", "figure"), inputs=(), stage=None) -> Path:
+def write_outputs(
+    ds: xr.Dataset,
+    out: str | Path,
+    *,
+    manifest: dict,
+    variables=None,
+    formats=("netcdf", "geotiff", "figure"),
+    inputs=(),
+    stage=None,
+) -> Path:
     """Write the outputs of fields already in memory into ``out``, atomically.
 
     Parameters
@@ -309,8 +380,12 @@ def write_outputs(ds: xr.Dataset, out: str | Path, *, manifest: dict, variables=
         names = _file_variables(ds, variables)
         if "netcdf" in formats:
             note("write NetCDF")
-            write_netcdf(ds, tmp / "fields.nc", variables=names,
-                         attrs={"scenario": json.dumps(manifest.get("scenario_as_written", {}))})
+            write_netcdf(
+                ds,
+                tmp / "fields.nc",
+                variables=names,
+                attrs={"scenario": json.dumps(manifest.get("scenario_as_written", {}))},
+            )
             written.append("fields.nc")
         if "geotiff" in formats:
             note("write GeoTIFF")

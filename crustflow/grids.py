@@ -16,8 +16,17 @@ import xarray as xr
 
 from .errors import CrustflowInputError
 
-__all__ = ["InputGrids", "GridSource", "GridChecks", "open_sources", "close_sources", "read_inputs",
-           "file_checksum", "provenance", "as_dataarray"]
+__all__ = [
+    "InputGrids",
+    "GridSource",
+    "GridChecks",
+    "open_sources",
+    "close_sources",
+    "read_inputs",
+    "file_checksum",
+    "provenance",
+    "as_dataarray",
+]
 
 
 @dataclass
@@ -70,39 +79,51 @@ class GridSource:
         The topography grid to align onto (None: this is the topography grid).
     """
 
-    def __init__(self, path, name: str, *, crs: str | None = None,
-                 target: GridSource | None = None) -> None:
+    def __init__(
+        self, path, name: str, *, crs: str | None = None, target: GridSource | None = None
+    ) -> None:
         import rasterio
         from rasterio.crs import CRS
 
         self.path, self.name = Path(path), name
         if not self.path.exists():
-            raise CrustflowInputError(f"{name}: file not found: {self.path}; check the path in the "
-                                      "scenario")
+            raise CrustflowInputError(
+                f"{name}: file not found: {self.path}; check the path in the scenario"
+            )
         try:
             self._src = rasterio.open(self.path)
         except (rasterio.errors.RasterioIOError, rasterio.errors.RasterioError, OSError) as exc:
             first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
-            raise CrustflowInputError(f"{name}: {self.path} is not a raster GDAL can read ({first}); "
-                                      "give a GeoTIFF or another single-band raster") from None
+            raise CrustflowInputError(
+                f"{name}: {self.path} is not a raster GDAL can read ({first}); "
+                "give a GeoTIFF or another single-band raster"
+            ) from None
         src = self._src
         if src.count != 1:
             src.close()
-            raise CrustflowInputError(f"{name}: {self.path} has {src.count} bands; give a "
-                                      "single-band raster")
+            raise CrustflowInputError(
+                f"{name}: {self.path} has {src.count} bands; give a single-band raster"
+            )
         t = src.transform
         if t.b != 0 or t.d != 0:
             src.close()
-            raise CrustflowInputError(f"{name}: {self.path} is a rotated grid; warp it to a north-up "
-                                      "grid first (e.g. with gdalwarp)")
+            raise CrustflowInputError(
+                f"{name}: {self.path} is a rotated grid; warp it to a north-up "
+                "grid first (e.g. with gdalwarp)"
+            )
         if min(src.height, src.width) < 3:
             src.close()
-            raise CrustflowInputError(f"{name}: {self.path} must be at least 3 x 3 cells "
-                                      f"(it is {src.height} x {src.width})")
+            raise CrustflowInputError(
+                f"{name}: {self.path} must be at least 3 x 3 cells "
+                f"(it is {src.height} x {src.width})"
+            )
         self.crs = src.crs if src.crs else (CRS.from_user_input(crs) if crs else None)
         self.flipped = t.e > 0
-        north_up = (t if not self.flipped else
-                    rasterio.Affine(t.a, 0.0, t.c, 0.0, -t.e, t.f + t.e * src.height))
+        north_up = (
+            t
+            if not self.flipped
+            else rasterio.Affine(t.a, 0.0, t.c, 0.0, -t.e, t.f + t.e * src.height)
+        )
         self.method = "read"
         self.record: dict = {"path": str(self.path), "shape": [src.height, src.width]}
         self._reader = src
@@ -118,14 +139,15 @@ class GridSource:
 
         src = self._src
         same = (src.height, src.width) == (target.height, target.width) and all(
-            abs(p - q) <= 1e-6 * abs(north_up.a) for p, q in zip(tuple(north_up)[:6],
-                                                                 tuple(target.transform)[:6],
-                                                                 strict=True))
+            abs(p - q) <= 1e-6 * abs(north_up.a)
+            for p, q in zip(tuple(north_up)[:6], tuple(target.transform)[:6], strict=True)
+        )
         if self.crs is None:
             if not same:
                 raise CrustflowInputError(
                     f"{self.name} carries no CRS and is not on the topography's pixel grid; save it "
-                    "with a CRS, or resample it onto the topography grid")
+                    "with a CRS, or resample it onto the topography grid"
+                )
             self.crs = target.crs
         self.transform, self.height, self.width = target.transform, target.height, target.width
         if same and self.crs == target.crs:
@@ -134,21 +156,34 @@ class GridSource:
             return
         self.flipped = False
         b = src.bounds
-        left, bottom, right, top = transform_bounds(self.crs, target.crs, b.left, b.bottom,
-                                                    b.right, b.top, densify_pts=21)
+        left, bottom, right, top = transform_bounds(
+            self.crs, target.crs, b.left, b.bottom, b.right, b.top, densify_pts=21
+        )
         tl, tb, tr, tt = target.bounds
         if left >= tr or right <= tl or bottom >= tt or top <= tb:
             raise CrustflowInputError(
                 f"{self.name} does not overlap the topography grid (bounds {left:.6g}, {bottom:.6g}, "
                 f"{right:.6g}, {top:.6g} vs {tl:.6g}, {tb:.6g}, {tr:.6g}, {tt:.6g} in the "
-                "topography's CRS); check both files cover the same region")
-        self._reader = WarpedVRT(src, src_crs=self.crs, crs=target.crs, transform=target.transform,
-                                 width=target.width, height=target.height,
-                                 resampling=Resampling.bilinear, src_nodata=src.nodata,
-                                 nodata=np.nan, dtype="float64")
+                "topography's CRS); check both files cover the same region"
+            )
+        self._reader = WarpedVRT(
+            src,
+            src_crs=self.crs,
+            crs=target.crs,
+            transform=target.transform,
+            width=target.width,
+            height=target.height,
+            resampling=Resampling.bilinear,
+            src_nodata=src.nodata,
+            nodata=np.nan,
+            dtype="float64",
+        )
         self.method = "bilinear resampling onto the topography grid (GDAL warped VRT)"
-        self.record.update(method=self.method, source_crs=self.crs.to_string(),
-                           source_resolution=[abs(src.transform.a), abs(src.transform.e)])
+        self.record.update(
+            method=self.method,
+            source_crs=self.crs.to_string(),
+            source_resolution=[abs(src.transform.a), abs(src.transform.e)],
+        )
 
     @property
     def bounds(self) -> tuple[float, float, float, float]:
@@ -206,17 +241,21 @@ class GridChecks:
         for key, src in self.sources.items():
             if self.count[key] == 0:
                 where = "" if key == "topography" else " on the topography grid"
-                raise CrustflowInputError(f"grids.{key}: {src.path} holds no valid cells{where} (all "
-                                          "nodata); check the file, its extent or its nodata value")
+                raise CrustflowInputError(
+                    f"grids.{key}: {src.path} holds no valid cells{where} (all "
+                    "nodata); check the file, its extent or its nodata value"
+                )
             if key in ("crust_thickness", "moho_depth"):
                 if self.vmax[key] < constants.KILOMETRE_SUSPICION:
                     raise CrustflowInputError(
                         f"grids.{key} values look like kilometres (max {self.vmax[key]:.4g}); give "
-                        "the grid in metres (multiply by 1000)")
+                        "the grid in metres (multiply by 1000)"
+                    )
             if key == "crust_thickness" and self.vmin[key] <= 0:
                 raise CrustflowInputError(
                     f"grids.crust_thickness has values <= 0 (min {self.vmin[key]:.4g} m); crustal "
-                    "thickness is surface to Moho and must be positive")
+                    "thickness is surface to Moho and must be positive"
+                )
 
 
 def open_sources(scenario) -> dict[str, GridSource]:
@@ -234,7 +273,8 @@ def open_sources(scenario) -> dict[str, GridSource]:
         if topo.crs is None:
             raise CrustflowInputError(
                 f"grids.topography ({scenario.topography.name}) carries no CRS; add it to the file "
-                'or set [grids] crs = "EPSG:...", naming the CRS of the grid')
+                'or set [grids] crs = "EPSG:...", naming the CRS of the grid'
+            )
         for key in ("crust_thickness", "moho_depth"):
             path = getattr(scenario, key)
             if path is not None:
@@ -296,9 +336,10 @@ def read_inputs(scenario) -> InputGrids:
         checks = GridChecks(sources)
         checks.update(arrays)
         checks.finish()
-        out = InputGrids(topography=as_dataarray(arrays["topography"], sources["topography"],
-                                                 "topography"),
-                         provenance=provenance(sources))
+        out = InputGrids(
+            topography=as_dataarray(arrays["topography"], sources["topography"], "topography"),
+            provenance=provenance(sources),
+        )
         for key in ("crust_thickness", "moho_depth"):
             if key in arrays:
                 setattr(out, key, as_dataarray(arrays[key], sources["topography"], key))

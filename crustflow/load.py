@@ -47,8 +47,9 @@ def airy_root(elevation, rho_crust: float, rho_mantle: float):
     return elevation * rho_crust / (rho_mantle - rho_crust)
 
 
-def crust_thickness_airy(elevation, reference_thickness: float, rho_crust: float, rho_mantle: float,
-                         rho_water: float):
+def crust_thickness_airy(
+    elevation, reference_thickness: float, rho_crust: float, rho_mantle: float, rho_water: float
+):
     """Crustal thickness (surface to Moho) in Airy isostatic balance with the topography.
 
     Parameters
@@ -90,8 +91,15 @@ def channel_top_depth(elevation, crust_thickness, channel_thickness):
     return crust_thickness - elevation - channel_thickness
 
 
-def overburden_pressure(elevation, crust_thickness, channel_thickness, *, rho_crust: float,
-                        rho_water: float, gravity: float):
+def overburden_pressure(
+    elevation,
+    crust_thickness,
+    channel_thickness,
+    *,
+    rho_crust: float,
+    rho_water: float,
+    gravity: float,
+):
     """Lithostatic pressure at the channel top, Pa.
 
     Parameters
@@ -150,8 +158,9 @@ def driving_gradient(overburden, top_depth, geometry, *, rho_channel: float, gra
     return pe - rho_channel * gravity * ze, pn - rho_channel * gravity * zn
 
 
-def uplift_rate(thickening_rate, elevation, *, rho_channel: float, rho_mantle: float,
-                rho_water: float):
+def uplift_rate(
+    thickening_rate, elevation, *, rho_channel: float, rho_mantle: float, rho_water: float
+):
     """Isostatic surface uplift rate from crustal thickening by channel inflow.
 
     Parameters

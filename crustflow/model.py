@@ -23,8 +23,18 @@ from .errors import CrustflowInputError
 from .maps import azimuth, divergence, grid_geometry
 from .scenario import ModelParameters, Scenario
 
-__all__ = ["Variable", "VARIABLES", "compute_fields", "solve", "fields_si", "to_practical",
-           "variable_attrs", "crust_thickness_of", "ThinCrustCheck", "CAUTION"]
+__all__ = [
+    "Variable",
+    "VARIABLES",
+    "compute_fields",
+    "solve",
+    "fields_si",
+    "to_practical",
+    "variable_attrs",
+    "crust_thickness_of",
+    "ThinCrustCheck",
+    "CAUTION",
+]
 
 
 @dataclass(frozen=True)
@@ -46,31 +56,40 @@ VARIABLES: dict[str, Variable] = {
     "crust_thickness": Variable("crustal thickness, surface to Moho", "km", 1e-3),
     "channel_top_depth": Variable("depth of the channel top below sea level", "km", 1e-3),
     "overburden_pressure": Variable("lithostatic pressure at the channel top", "MPa", 1e-6),
-    "drive_east": Variable("horizontal pressure gradient in the channel, east component",
-                           "Pa m-1", 1.0),
-    "drive_north": Variable("horizontal pressure gradient in the channel, north component",
-                            "Pa m-1", 1.0),
+    "drive_east": Variable(
+        "horizontal pressure gradient in the channel, east component", "Pa m-1", 1.0
+    ),
+    "drive_north": Variable(
+        "horizontal pressure gradient in the channel, north component", "Pa m-1", 1.0
+    ),
     "flux_east": Variable("channel volume flux per unit width, east component", "m2 yr-1", _M2_YR),
-    "flux_north": Variable("channel volume flux per unit width, north component", "m2 yr-1",
-                           _M2_YR),
+    "flux_north": Variable(
+        "channel volume flux per unit width, north component", "m2 yr-1", _M2_YR
+    ),
     "flux_magnitude": Variable("channel volume flux per unit width, magnitude", "m2 yr-1", _M2_YR),
     "flux_azimuth": Variable("direction of channel flux, clockwise from true north", "degree", 1.0),
     "mean_velocity_east": Variable("channel mean velocity, east component", "mm yr-1", _MM_YR),
     "mean_velocity_north": Variable("channel mean velocity, north component", "mm yr-1", _MM_YR),
     "peak_speed": Variable("largest speed within the channel", "mm yr-1", _MM_YR),
     "peak_speed_height": Variable("height of the largest speed above the channel base", "km", 1e-3),
-    "upper_wall_drag_east": Variable("shear traction of the channel on its upper wall, east",
-                                     "MPa", 1e-6),
-    "upper_wall_drag_north": Variable("shear traction of the channel on its upper wall, north",
-                                      "MPa", 1e-6),
-    "lower_wall_drag_east": Variable("shear traction of the channel on its lower wall, east",
-                                     "MPa", 1e-6),
-    "lower_wall_drag_north": Variable("shear traction of the channel on its lower wall, north",
-                                      "MPa", 1e-6),
-    "backflow": Variable("flow reversal: some height in the channel moves against the net flux",
-                         "1", 1.0, flag=True),
-    "wall_driven_share": Variable("share of the flux carried by wall motion, "
-                                  "|q_wall| / (|q_wall| + |q_pressure|)", "1", 1.0),
+    "upper_wall_drag_east": Variable(
+        "shear traction of the channel on its upper wall, east", "MPa", 1e-6
+    ),
+    "upper_wall_drag_north": Variable(
+        "shear traction of the channel on its upper wall, north", "MPa", 1e-6
+    ),
+    "lower_wall_drag_east": Variable(
+        "shear traction of the channel on its lower wall, east", "MPa", 1e-6
+    ),
+    "lower_wall_drag_north": Variable(
+        "shear traction of the channel on its lower wall, north", "MPa", 1e-6
+    ),
+    "backflow": Variable(
+        "flow reversal: some height in the channel moves against the net flux", "1", 1.0, flag=True
+    ),
+    "wall_driven_share": Variable(
+        "share of the flux carried by wall motion, |q_wall| / (|q_wall| + |q_pressure|)", "1", 1.0
+    ),
     "thickening_rate": Variable("crustal thickening rate, -div(q)", "mm yr-1", _MM_YR),
     "uplift_rate": Variable("isostatic surface uplift rate from thickening", "mm yr-1", _MM_YR),
 }
@@ -79,13 +98,16 @@ VARIABLES: dict[str, Variable] = {
 def _grid_crs(grid: xr.DataArray):
     crs = grid.rio.crs
     if crs is None:
-        raise CrustflowInputError("the topography grid has no CRS; write one with "
-                                  "grid.rio.write_crs('EPSG:...') or name it in the scenario")
+        raise CrustflowInputError(
+            "the topography grid has no CRS; write one with "
+            "grid.rio.write_crs('EPSG:...') or name it in the scenario"
+        )
     return crs
 
 
-def crust_thickness_of(elevation, parameters: ModelParameters, *, crust_thickness=None,
-                       moho_depth=None):
+def crust_thickness_of(
+    elevation, parameters: ModelParameters, *, crust_thickness=None, moho_depth=None
+):
     """Crustal thickness T (m) from whichever input the run has: T itself, Moho depth, or Airy."""
     p = parameters
     if crust_thickness is not None:
@@ -93,10 +115,13 @@ def crust_thickness_of(elevation, parameters: ModelParameters, *, crust_thicknes
     if moho_depth is not None:
         return load.crust_thickness_from_moho(elevation, moho_depth)
     if p.reference_thickness is None:
-        raise CrustflowInputError("no crust_thickness or moho_depth grid and no "
-                                  "reference_thickness for Airy isostasy; give one of them")
-    return load.crust_thickness_airy(elevation, p.reference_thickness, p.rho_crust, p.rho_mantle,
-                                     p.rho_water)
+        raise CrustflowInputError(
+            "no crust_thickness or moho_depth grid and no "
+            "reference_thickness for Airy isostasy; give one of them"
+        )
+    return load.crust_thickness_airy(
+        elevation, p.reference_thickness, p.rho_crust, p.rho_mantle, p.rho_water
+    )
 
 
 class ThinCrustCheck:
@@ -119,11 +144,18 @@ class ThinCrustCheck:
             raise CrustflowInputError(
                 f"channel.thickness ({self.h / 1e3:g} km) is not less than the crustal thickness in "
                 f"{self.cells} cells (thinnest crust {self.thinnest / 1e3:.3g} km); give a thinner "
-                "channel or check the thickness grid")
+                "channel or check the thickness grid"
+            )
 
 
-def fields_si(elevation: np.ndarray, crust_thickness: np.ndarray, geometry, parameters:
-              ModelParameters, *, wanted=None) -> dict[str, np.ndarray]:
+def fields_si(
+    elevation: np.ndarray,
+    crust_thickness: np.ndarray,
+    geometry,
+    parameters: ModelParameters,
+    *,
+    wanted=None,
+) -> dict[str, np.ndarray]:
     """Every output variable in SI units on one block of rows (numpy arrays).
 
     Parameters
@@ -149,21 +181,30 @@ def fields_si(elevation: np.ndarray, crust_thickness: np.ndarray, geometry, para
     T = np.where(valid, crust_thickness, np.nan)
     h = p.channel_thickness
     z_top = load.channel_top_depth(H, T, h)
-    p_top = load.overburden_pressure(H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water,
-                                     gravity=p.gravity)
-    g_east, g_north = load.driving_gradient(p_top, z_top, geometry, rho_channel=p.rho_channel,
-                                            gravity=p.gravity)
-    sol = channel_flow(g_east, g_north, h, p.viscosity, wall_east=p.wall_east,
-                       wall_north=p.wall_north)
+    p_top = load.overburden_pressure(
+        H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water, gravity=p.gravity
+    )
+    g_east, g_north = load.driving_gradient(
+        p_top, z_top, geometry, rho_channel=p.rho_channel, gravity=p.gravity
+    )
+    sol = channel_flow(
+        g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
+    )
     live = valid & np.isfinite(g_east) & np.isfinite(g_north)
-    out = {"crust_thickness": T, "channel_top_depth": z_top, "overburden_pressure": p_top,
-           "drive_east": g_east, "drive_north": g_north}
+    out = {
+        "crust_thickness": T,
+        "channel_top_depth": z_top,
+        "overburden_pressure": p_top,
+        "drive_east": g_east,
+        "drive_north": g_north,
+    }
     out.update(sol.as_dict())
     if wanted & {"thickening_rate", "uplift_rate"}:
         thickening = -divergence(sol.flux_east, sol.flux_north, geometry)
         out["thickening_rate"] = thickening
-        out["uplift_rate"] = load.uplift_rate(thickening, H, rho_channel=p.rho_channel,
-                                              rho_mantle=p.rho_mantle, rho_water=p.rho_water)
+        out["uplift_rate"] = load.uplift_rate(
+            thickening, H, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle, rho_water=p.rho_water
+        )
     if "flux_magnitude" in wanted:
         out["flux_magnitude"] = np.hypot(sol.flux_east, sol.flux_north)
     if "flux_azimuth" in wanted:
@@ -175,8 +216,11 @@ def fields_si(elevation: np.ndarray, crust_thickness: np.ndarray, geometry, para
         values = np.asarray(out[name])
         if VARIABLES[name].flag:
             values = values.astype("float64")
-        mask = valid if name in ("crust_thickness", "channel_top_depth",
-                                 "overburden_pressure") else live
+        mask = (
+            valid
+            if name in ("crust_thickness", "channel_top_depth", "overburden_pressure")
+            else live
+        )
         result[name] = np.where(mask, values, np.nan)
     return result
 
@@ -192,8 +236,9 @@ def variable_attrs(name: str) -> dict:
     var = VARIABLES[name]
     attrs = {"long_name": var.long_name, "units": var.units}
     if var.flag:
-        attrs.update(flag_values=np.array([0, 1], dtype="int8"),
-                     flag_meanings="no_backflow backflow")
+        attrs.update(
+            flag_values=np.array([0, 1], dtype="int8"), flag_meanings="no_backflow backflow"
+        )
     return attrs
 
 
@@ -243,46 +288,58 @@ def compute_fields(
     # The stored transform (as read from the file) gives the exact spacing; recompute it from the
     # coordinates only when there is none or the rows were flipped here.
     transform = topography.rio.transform(recalc=flip)
-    geom = grid_geometry(topography.x.values, topography.y.values, crs,
-                         spacing=(transform.a, transform.e))
+    geom = grid_geometry(
+        topography.x.values, topography.y.values, crs, spacing=(transform.a, transform.e)
+    )
     H = np.asarray(topography.values, dtype="float64")
     grids = {}
     for other, key in ((crust_thickness, "crust_thickness"), (moho_depth, "moho_depth")):
         if other is None:
             continue
-        if (other.shape != H.shape or not np.allclose(other.x.values, topography.x.values)
-                or not np.allclose(other.y.values, topography.y.values)):
-            raise CrustflowInputError(f"{key} is not on the topography grid's cells; align it first "
-                                      "(read both with crustflow.solve, or resample it)")
+        if (
+            other.shape != H.shape
+            or not np.allclose(other.x.values, topography.x.values)
+            or not np.allclose(other.y.values, topography.y.values)
+        ):
+            raise CrustflowInputError(
+                f"{key} is not on the topography grid's cells; align it first "
+                "(read both with crustflow.solve, or resample it)"
+            )
         grids[key] = np.asarray(other.values, dtype="float64")
     T = crust_thickness_of(H, p, **grids)
     check = ThinCrustCheck(p.channel_thickness)
     check.update(np.where(np.isfinite(H), T, np.nan))
     check.finish()
     si = fields_si(H, T, geom, p)
-    data_vars = {name: (("y", "x"), to_practical(name, si[name]), variable_attrs(name))
-                 for name in VARIABLES}
+    data_vars = {
+        name: (("y", "x"), to_practical(name, si[name]), variable_attrs(name)) for name in VARIABLES
+    }
     ds = xr.Dataset(data_vars, coords={"y": topography.y.values, "x": topography.x.values})
     for coord in ("x", "y"):
         ds[coord].attrs.update(topography[coord].attrs)
     ds = ds.rio.write_crs(crs).rio.write_coordinate_system()
     ds = ds.rio.write_transform(transform)
-    ds.attrs.update({
-        "title": "crustflow channel-flow fields",
-        "crustflow_version": __version__,
-        "parameters_SI": json.dumps(dict(vars(p))),
-        "caution": CAUTION,
-    })
+    ds.attrs.update(
+        {
+            "title": "crustflow channel-flow fields",
+            "crustflow_version": __version__,
+            "parameters_SI": json.dumps(dict(vars(p))),
+            "caution": CAUTION,
+        }
+    )
     return ds
 
 
 #: One-line caution carried by every output.
-CAUTION = ("Research estimate of a simplified model (thin channel, rigid walls, lithostatic load, "
-           "Newtonian); no basis for hazard or engineering decisions without local, licensed review.")
+CAUTION = (
+    "Research estimate of a simplified model (thin channel, rigid walls, lithostatic load, "
+    "Newtonian); no basis for hazard or engineering decisions without local, licensed review."
+)
 
 
-def solve(scenario: Scenario, *, stage: Callable[[str], None] | None = None,
-          timings: dict | None = None) -> xr.Dataset:
+def solve(
+    scenario: Scenario, *, stage: Callable[[str], None] | None = None, timings: dict | None = None
+) -> xr.Dataset:
     """Read the grids a scenario names and compute the channel-flow fields.
 
     Parameters
@@ -314,9 +371,13 @@ def solve(scenario: Scenario, *, stage: Callable[[str], None] | None = None,
 
     note("read grids")
     grids = read_inputs(scenario)
-    ds = compute_fields(grids.topography, parameters=scenario.parameters,
-                        crust_thickness=grids.crust_thickness, moho_depth=grids.moho_depth,
-                        stage=note)
+    ds = compute_fields(
+        grids.topography,
+        parameters=scenario.parameters,
+        crust_thickness=grids.crust_thickness,
+        moho_depth=grids.moho_depth,
+        stage=note,
+    )
     note("done")
     times.pop("done", None)
     ds.attrs["title"] = scenario.title

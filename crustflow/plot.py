@@ -58,11 +58,19 @@ def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi:
     fig, ax = plt.subplots(figsize=(8, 6.5), layout="constrained")
     dx, dy = abs(x[1] - x[0]), abs(y[1] - y[0])
     extent = (x.min() - dx / 2, x.max() + dx / 2, y.min() - dy / 2, y.max() + dy / 2)
-    image = ax.imshow(mag, extent=extent, origin="upper" if y[0] > y[-1] else "lower",
-                      cmap="cividis", interpolation="nearest")
+    image = ax.imshow(
+        mag,
+        extent=extent,
+        origin="upper" if y[0] > y[-1] else "lower",
+        cmap="cividis",
+        interpolation="nearest",
+    )
     bar = fig.colorbar(image, ax=ax, shrink=0.85)
-    bar.set_label(f"channel flux per unit width ({ds['flux_magnitude'].attrs.get('units', '')})"
-                  .replace("m2 yr-1", "m²/yr"))
+    bar.set_label(
+        f"channel flux per unit width ({ds['flux_magnitude'].attrs.get('units', '')})".replace(
+            "m2 yr-1", "m²/yr"
+        )
+    )
     step = arrow_stride(mag.shape)
     sl = (slice(step // 2, None, step), slice(step // 2, None, step))
     qe, qn = ds["flux_east"].values[sl], ds["flux_north"].values[sl]
@@ -70,14 +78,31 @@ def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi:
     norm = np.hypot(qe, qn)
     with np.errstate(invalid="ignore", divide="ignore"):
         ue, un = np.where(norm > 0, qe / norm, 0.0), np.where(norm > 0, qn / norm, 0.0)
-    ax.quiver(xx, yy, ue, un, color="white", edgecolor="black", linewidth=0.3, pivot="middle",
-              scale=ARROWS_ACROSS * 1.3, width=0.003)
+    ax.quiver(
+        xx,
+        yy,
+        ue,
+        un,
+        color="white",
+        edgecolor="black",
+        linewidth=0.3,
+        pivot="middle",
+        scale=ARROWS_ACROSS * 1.3,
+        width=0.003,
+    )
     ax.set_xlabel("longitude (degrees)" if geographic else f"x ({unit})")
     ax.set_ylabel("latitude (degrees)" if geographic else f"y ({unit})")
     ax.set_aspect(1.0 / np.cos(np.deg2rad(np.nanmean(y))) if geographic else "equal")
     ax.set_title(title or ds.attrs.get("title", "crustflow"))
-    fig.text(0.01, 0.005, "Arrows: flux direction. " + CAUTION, fontsize=6, ha="left", va="bottom",
-             wrap=True)
+    fig.text(
+        0.01,
+        0.005,
+        "Arrows: flux direction. " + CAUTION,
+        fontsize=6,
+        ha="left",
+        va="bottom",
+        wrap=True,
+    )
     path = Path(path)
     fig.savefig(path, dpi=dpi)
     plt.close(fig)

@@ -17,8 +17,13 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["plateau_elevation", "plateau_crust_thickness", "write_sample_grids", "demo_scenario",
-           "SAMPLE_NAMES"]
+__all__ = [
+    "plateau_elevation",
+    "plateau_crust_thickness",
+    "write_sample_grids",
+    "demo_scenario",
+    "SAMPLE_NAMES",
+]
 
 #: Sample scenario folders under sample_grids/.
 SAMPLE_NAMES = ("plateau", "plateau-lonlat")
@@ -57,15 +62,20 @@ def _ramp(s, centre, width):
 def plateau_elevation(x, y):
     """Elevation of the invented plateau, m, at projected coordinates ``x``, ``y`` (m)."""
     xk, yk = np.asarray(x) / 1e3, np.asarray(y) / 1e3
-    plateau = (_ramp(yk, 3470.0, 110.0) * (1.0 - _ramp(yk, 3760.0, 18.0))
-               * _ramp(xk, 260.0, 45.0) * (1.0 - _ramp(xk, 700.0, 90.0)))
+    plateau = (
+        _ramp(yk, 3470.0, 110.0)
+        * (1.0 - _ramp(yk, 3760.0, 18.0))
+        * _ramp(xk, 260.0, 45.0)
+        * (1.0 - _ramp(xk, 700.0, 90.0))
+    )
     ridges = 180.0 * np.sin(2 * np.pi * (xk + 0.4 * yk) / 140.0) * plateau
     sea = (1.0 - _ramp(xk, 330.0, 40.0)) * (1.0 - _ramp(yk, 3480.0, 45.0))
     return 250.0 + 4300.0 * plateau + ridges - 2400.0 * sea
 
 
-def plateau_crust_thickness(x, y, *, reference=35e3, rho_crust=2800.0, rho_mantle=3300.0,
-                            rho_water=1030.0):
+def plateau_crust_thickness(
+    x, y, *, reference=35e3, rho_crust=2800.0, rho_mantle=3300.0, rho_water=1030.0
+):
     """Crustal thickness of the invented plateau, m: Airy balance plus a north-eastern keel."""
     h = plateau_elevation(x, y)
     land = reference + h * rho_mantle / (rho_mantle - rho_crust)
@@ -78,9 +88,21 @@ def plateau_crust_thickness(x, y, *, reference=35e3, rho_crust=2800.0, rho_mantl
 def _write(path: Path, data: np.ndarray, crs: str, transform, description: str) -> None:
     import rasterio
 
-    profile = dict(driver="GTiff", width=data.shape[1], height=data.shape[0], count=1,
-                   dtype="float32", crs=crs, transform=transform, nodata=-9999.0,
-                   compress="deflate", predictor=3, tiled=True, blockxsize=64, blockysize=64)
+    profile = dict(
+        driver="GTiff",
+        width=data.shape[1],
+        height=data.shape[0],
+        count=1,
+        dtype="float32",
+        crs=crs,
+        transform=transform,
+        nodata=-9999.0,
+        compress="deflate",
+        predictor=3,
+        tiled=True,
+        blockxsize=64,
+        blockysize=64,
+    )
     with rasterio.open(path, "w", **profile) as dst:
         dst.write(data.astype("float32"), 1)
         dst.set_band_description(1, description)
@@ -100,7 +122,12 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
     out.mkdir(parents=True, exist_ok=True)
     for name, cell, func, text in (
         ("topography.tif", 4e3, plateau_elevation, "surface elevation above sea level (m)"),
-        ("crust_thickness.tif", 10e3, plateau_crust_thickness, "crustal thickness, surface to Moho (m)"),
+        (
+            "crust_thickness.tif",
+            10e3,
+            plateau_crust_thickness,
+            "crustal thickness, surface to Moho (m)",
+        ),
     ):
         xs = np.arange(west + cell / 2, east, cell)
         ys = np.arange(north - cell / 2, south, -cell)
@@ -123,10 +150,20 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
     out = folder / "plateau-lonlat"
     out.mkdir(parents=True, exist_ok=True)
     transform = from_origin(lon_w, lat_n, step, step)
-    _write(out / "topography.tif", plateau_elevation(px, py), "EPSG:4326", transform,
-           "surface elevation above sea level (m)")
-    _write(out / "crust_thickness.tif", plateau_crust_thickness(px, py), "EPSG:4326", transform,
-           "crustal thickness, surface to Moho (m)")
+    _write(
+        out / "topography.tif",
+        plateau_elevation(px, py),
+        "EPSG:4326",
+        transform,
+        "surface elevation above sea level (m)",
+    )
+    _write(
+        out / "crust_thickness.tif",
+        plateau_crust_thickness(px, py),
+        "EPSG:4326",
+        transform,
+        "crustal thickness, surface to Moho (m)",
+    )
     (out / "scenario.toml").write_text(SCENARIO_TEXT.format(suffix=", lon/lat grid"))
     written.append(out / "scenario.toml")
     return written
@@ -141,8 +178,9 @@ def demo_scenario(name: str = "plateau") -> Path:
     from .errors import CrustflowInputError
 
     if name not in SAMPLE_NAMES:
-        raise CrustflowInputError(f"unknown sample scenario '{name}'; choose one of "
-                                  f"{', '.join(SAMPLE_NAMES)}")
+        raise CrustflowInputError(
+            f"unknown sample scenario '{name}'; choose one of {', '.join(SAMPLE_NAMES)}"
+        )
     bundled = Path(__file__).resolve().parents[1] / "sample_grids" / name / "scenario.toml"
     if bundled.is_file():
         return bundled

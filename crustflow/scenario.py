@@ -90,9 +90,11 @@ class ModelParameters:
         ]
         for key, value, example in checks:
             if not value > 0:  # also catches NaN
-                raise CrustflowInputError(f"{key} must be positive (got {value:g} in SI); e.g. {example}")
+                raise CrustflowInputError(
+                    f"{key} must be positive (got {value:g} in SI); e.g. {example}"
+                )
         if not self.rho_water >= 0:
-            raise CrustflowInputError("densities.water must not be negative; e.g. \"1030 kg/m^3\"")
+            raise CrustflowInputError('densities.water must not be negative; e.g. "1030 kg/m^3"')
         if not self.rho_mantle > max(self.rho_crust, self.rho_channel, self.rho_water):
             raise CrustflowInputError(
                 "densities.mantle must exceed the crust, channel and water densities for isostasy "
@@ -147,15 +149,19 @@ class Scenario:
                 "crs": self.crs,
             },
             "parameters_SI": asdict(self.parameters),
-            "output": {"variables": list(self.variables) if self.variables else "all",
-                       "formats": list(self.formats)},
+            "output": {
+                "variables": list(self.variables) if self.variables else "all",
+                "formats": list(self.formats),
+            },
         }
         return out
 
     @property
     def input_paths(self) -> list[Path]:
         """Every input file the scenario names."""
-        return [p for p in (self.topography, self.crust_thickness, self.moho_depth) if p is not None]
+        return [
+            p for p in (self.topography, self.crust_thickness, self.moho_depth) if p is not None
+        ]
 
 
 def _unknown_key(key: str, valid: list[str], where: str) -> CrustflowInputError:
@@ -170,21 +176,26 @@ def _check_keys(raw: dict, schema: dict, where: str) -> None:
             raise _unknown_key(key, list(schema), where)
         if isinstance(schema[key], dict):
             if not isinstance(value, dict):
-                raise CrustflowInputError(f"[{key}] must be a table (a [{key}] section), not a value")
+                raise CrustflowInputError(
+                    f"[{key}] must be a table (a [{key}] section), not a value"
+                )
             _check_keys(value, schema[key], f"[{key}]")
         elif isinstance(value, dict):
-            raise CrustflowInputError(f"{where.strip('[]') or 'top level'} key '{key}' takes a value, "
-                                      "not a table")
+            raise CrustflowInputError(
+                f"{where.strip('[]') or 'top level'} key '{key}' takes a value, not a table"
+            )
 
 
 def _path(value: object, key: str, base: Path) -> Path:
     if not isinstance(value, str) or not value.strip():
-        raise CrustflowInputError(f"{key} must be a file path in quotes, e.g. {key} = \"topo.tif\"")
+        raise CrustflowInputError(f'{key} must be a file path in quotes, e.g. {key} = "topo.tif"')
     path = Path(value).expanduser()
     return path if path.is_absolute() else (base / path)
 
 
-def scenario_from_dict(raw: dict, base_dir: str | Path = ".", source: Path | None = None) -> Scenario:
+def scenario_from_dict(
+    raw: dict, base_dir: str | Path = ".", source: Path | None = None
+) -> Scenario:
     """Build a :class:`Scenario` from a dict shaped like the TOML file.
 
     Parameters
@@ -209,11 +220,14 @@ def scenario_from_dict(raw: dict, base_dir: str | Path = ".", source: Path | Non
     _check_keys(raw, _SCHEMA, "the scenario's top level")
     grids = raw.get("grids")
     if not grids or "topography" not in grids:
-        raise CrustflowInputError('the scenario needs [grids] topography = "topo.tif" (a raster of '
-                                  "surface elevation in m)")
+        raise CrustflowInputError(
+            'the scenario needs [grids] topography = "topo.tif" (a raster of '
+            "surface elevation in m)"
+        )
     if "crust_thickness" in grids and "moho_depth" in grids:
-        raise CrustflowInputError("give at most one of grids.crust_thickness and grids.moho_depth; "
-                                  "remove the other")
+        raise CrustflowInputError(
+            "give at most one of grids.crust_thickness and grids.moho_depth; remove the other"
+        )
     dens = raw.get("densities", {})
     chan = raw.get("channel", {})
     for key in ("thickness", "viscosity"):
@@ -223,26 +237,41 @@ def scenario_from_dict(raw: dict, base_dir: str | Path = ".", source: Path | Non
     reference = None
     if "reference_thickness" in grids:
         if "crust_thickness" in grids or "moho_depth" in grids:
-            raise CrustflowInputError("grids.reference_thickness is for the Airy case only; remove it or "
-                                      "remove grids.crust_thickness / grids.moho_depth")
-        reference = parse_quantity(grids["reference_thickness"], "grids.reference_thickness", "length")
+            raise CrustflowInputError(
+                "grids.reference_thickness is for the Airy case only; remove it or "
+                "remove grids.crust_thickness / grids.moho_depth"
+            )
+        reference = parse_quantity(
+            grids["reference_thickness"], "grids.reference_thickness", "length"
+        )
     elif "crust_thickness" not in grids and "moho_depth" not in grids:
-        raise CrustflowInputError('with neither grids.crust_thickness nor grids.moho_depth, give '
-                                  'grids.reference_thickness (e.g. "35 km") for Airy isostasy')
+        raise CrustflowInputError(
+            "with neither grids.crust_thickness nor grids.moho_depth, give "
+            'grids.reference_thickness (e.g. "35 km") for Airy isostasy'
+        )
     wall = (0.0, 0.0)
     if "upper_velocity" in raw.get("walls", {}):
         wall = parse_vector(raw["walls"]["upper_velocity"], "walls.upper_velocity", "velocity")
     kw = {}
-    for key, name in (("crust", "rho_crust"), ("mantle", "rho_mantle"), ("water", "rho_water"),
-                      ("channel", "rho_channel")):
+    for key, name in (
+        ("crust", "rho_crust"),
+        ("mantle", "rho_mantle"),
+        ("water", "rho_water"),
+        ("channel", "rho_channel"),
+    ):
         if key in dens:
             kw[name] = parse_quantity(dens[key], f"densities.{key}", "density")
     if "gravity" in raw.get("constants", {}):
-        kw["gravity"] = parse_quantity(raw["constants"]["gravity"], "constants.gravity", "acceleration")
+        kw["gravity"] = parse_quantity(
+            raw["constants"]["gravity"], "constants.gravity", "acceleration"
+        )
     params = ModelParameters(
         channel_thickness=parse_quantity(chan["thickness"], "channel.thickness", "length"),
         viscosity=parse_quantity(chan["viscosity"], "channel.viscosity", "viscosity"),
-        wall_east=wall[0], wall_north=wall[1], reference_thickness=reference, **kw,
+        wall_east=wall[0],
+        wall_north=wall[1],
+        reference_thickness=reference,
+        **kw,
     )
     output = raw.get("output", {})
     variables = output.get("variables")
@@ -250,14 +279,18 @@ def scenario_from_dict(raw: dict, base_dir: str | Path = ".", source: Path | Non
         from .model import VARIABLES
 
         if not isinstance(variables, list) or not all(isinstance(v, str) for v in variables):
-            raise CrustflowInputError('output.variables must be a list of names, e.g. ["flux_east"]')
+            raise CrustflowInputError(
+                'output.variables must be a list of names, e.g. ["flux_east"]'
+            )
         for name in variables:
             if name not in VARIABLES:
                 raise _unknown_key(name, list(VARIABLES), "output.variables")
         variables = tuple(dict.fromkeys(variables))
     formats = output.get("formats", list(FORMATS))
     if not isinstance(formats, list) or not all(isinstance(f, str) for f in formats):
-        raise CrustflowInputError('output.formats must be a list, e.g. ["netcdf", "geotiff", "figure"]')
+        raise CrustflowInputError(
+            'output.formats must be a list, e.g. ["netcdf", "geotiff", "figure"]'
+        )
     for name in formats:
         if name not in FORMATS:
             raise _unknown_key(name, list(FORMATS), "output.formats")
@@ -270,9 +303,13 @@ def scenario_from_dict(raw: dict, base_dir: str | Path = ".", source: Path | Non
     return Scenario(
         title=title,
         topography=_path(grids["topography"], "grids.topography", base),
-        crust_thickness=(_path(grids["crust_thickness"], "grids.crust_thickness", base)
-                         if "crust_thickness" in grids else None),
-        moho_depth=_path(grids["moho_depth"], "grids.moho_depth", base) if "moho_depth" in grids
+        crust_thickness=(
+            _path(grids["crust_thickness"], "grids.crust_thickness", base)
+            if "crust_thickness" in grids
+            else None
+        ),
+        moho_depth=_path(grids["moho_depth"], "grids.moho_depth", base)
+        if "moho_depth" in grids
         else None,
         crs=crs,
         parameters=params,
@@ -307,8 +344,9 @@ def load_scenario(path: str | Path) -> Scenario:
         with path.open("rb") as fh:
             raw = tomllib.load(fh)
     except tomllib.TOMLDecodeError as exc:
-        raise CrustflowInputError(f"scenario file {path} is not valid TOML ({exc}); fix the syntax") \
-            from None
+        raise CrustflowInputError(
+            f"scenario file {path} is not valid TOML ({exc}); fix the syntax"
+        ) from None
     except (OSError, UnicodeDecodeError) as exc:
         raise CrustflowInputError(f"cannot read scenario file {path} ({exc})") from None
     return scenario_from_dict(raw, base_dir=path.parent, source=path.resolve())

@@ -18,8 +18,14 @@ import numpy as np
 
 from .grids import GridChecks, close_sources, open_sources, provenance
 from .maps import grid_geometry
-from .model import (VARIABLES, ThinCrustCheck, crust_thickness_of, fields_si, to_practical,
-                    variable_attrs)
+from .model import (
+    VARIABLES,
+    ThinCrustCheck,
+    crust_thickness_of,
+    fields_si,
+    to_practical,
+    variable_attrs,
+)
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
 
@@ -39,8 +45,13 @@ def strip_rows_for(width: int, cells: int = CELLS_PER_STRIP) -> int:
     return rows if rows < 256 else (rows // 256) * 256
 
 
-def run_strips(scenario, folder: str | Path, *, strip_rows: int | None = None,
-               stage: Callable[[str], None] | None = None) -> dict:
+def run_strips(
+    scenario,
+    folder: str | Path,
+    *,
+    strip_rows: int | None = None,
+    stage: Callable[[str], None] | None = None,
+) -> dict:
     """Compute a scenario strip by strip and write its NetCDF and GeoTIFF outputs into ``folder``.
 
     Parameters
@@ -88,8 +99,15 @@ def run_strips(scenario, folder: str | Path, *, strip_rows: int | None = None,
         nc = tifs = None
         if "netcdf" in scenario.formats:
             attrs = netcdf_attrs(scenario.title, json.dumps(scenario.written))
-            nc = NetcdfWriter(folder / "fields.nc", x, y, topo.crs, t,
-                              {n: variable_attrs(n) for n in names}, attrs)
+            nc = NetcdfWriter(
+                folder / "fields.nc",
+                x,
+                y,
+                topo.crs,
+                t,
+                {n: variable_attrs(n) for n in names},
+                attrs,
+            )
             writers.append(nc)
             written.append("fields.nc")
         if "geotiff" in scenario.formats:
@@ -97,9 +115,14 @@ def run_strips(scenario, folder: str | Path, *, strip_rows: int | None = None,
 
             tifs = {}
             for n in names:
-                tifs[n] = GeotiffWriter(folder / f"{n}.tif", crs=topo.crs, transform=t,
-                                        height=height, width=width,
-                                        attrs=dict(variable_attrs(n), caution=CAUTION))
+                tifs[n] = GeotiffWriter(
+                    folder / f"{n}.tif",
+                    crs=topo.crs,
+                    transform=t,
+                    height=height,
+                    width=width,
+                    attrs=dict(variable_attrs(n), caution=CAUTION),
+                )
                 writers.append(tifs[n])
                 written.append(f"{n}.tif")
         step = max(1, -(-max(height, width) // FIGURE_CELLS))
@@ -114,16 +137,20 @@ def run_strips(scenario, folder: str | Path, *, strip_rows: int | None = None,
             r1 = min(height, r0 + rows)
             a, b = max(0, r0 - HALO_ROWS), min(height, r1 + HALO_ROWS)
             arrays = {key: src.read(a, b) for key, src in sources.items()}
-            checks.update({k: v[r0 - a:r1 - a] for k, v in arrays.items()})
+            checks.update({k: v[r0 - a : r1 - a] for k, v in arrays.items()})
             H = arrays["topography"]
-            T = crust_thickness_of(H, p, crust_thickness=arrays.get("crust_thickness"),
-                                   moho_depth=arrays.get("moho_depth"))
-            thin.update(np.where(np.isfinite(H), T, np.nan)[r0 - a:r1 - a])
+            T = crust_thickness_of(
+                H,
+                p,
+                crust_thickness=arrays.get("crust_thickness"),
+                moho_depth=arrays.get("moho_depth"),
+            )
+            thin.update(np.where(np.isfinite(H), T, np.nan)[r0 - a : r1 - a])
             if thin.cells:
                 break
             geom = grid_geometry(x, y[a:b], topo.crs, spacing=(t.a, t.e))
             si = fields_si(H, T, geom, p, wanted=wanted)
-            out = {n: to_practical(n, v[r0 - a:r1 - a]) for n, v in si.items()}
+            out = {n: to_practical(n, v[r0 - a : r1 - a]) for n, v in si.items()}
             if nc is not None:
                 nc.write_rows(r0, {n: out[n] for n in names})
             if tifs is not None:
@@ -132,13 +159,16 @@ def run_strips(scenario, folder: str | Path, *, strip_rows: int | None = None,
             for n in summary:
                 v = out[n][np.isfinite(out[n])]
                 if v.size:
-                    ranges[n] = [min(ranges[n][0], float(v.min())), max(ranges[n][1], float(v.max()))]
+                    ranges[n] = [
+                        min(ranges[n][0], float(v.min())),
+                        max(ranges[n][1], float(v.max())),
+                    ]
             counts["backflow"] += int(np.nansum(out["backflow"]))
             counts["valid"] += int(np.isfinite(out["backflow"]).sum())
             if make_figure:
                 first = (-r0) % step
                 for n in figure_vars:
-                    fig_rows[n].append(out[n][first::step, step // 2::step])
+                    fig_rows[n].append(out[n][first::step, step // 2 :: step])
         checks.finish()  # on early exit these stats are partial: enough to name the likely cause
         thin.finish()
         for w in writers:
@@ -147,9 +177,16 @@ def run_strips(scenario, folder: str | Path, *, strip_rows: int | None = None,
         figure = None
         if make_figure:
             figure = _figure_dataset(fig_rows, x, y, step, topo.crs, scenario.title)
-        return {"written": written, "provenance": provenance(sources), "ranges": ranges,
-                "backflow_cells": counts["backflow"], "valid_cells": counts["valid"],
-                "figure": figure, "shape": [height, width], "strip_rows": rows}
+        return {
+            "written": written,
+            "provenance": provenance(sources),
+            "ranges": ranges,
+            "backflow_cells": counts["backflow"],
+            "valid_cells": counts["valid"],
+            "figure": figure,
+            "shape": [height, width],
+            "strip_rows": rows,
+        }
     finally:
         for w in writers:
             w.close()
@@ -160,9 +197,9 @@ def _figure_dataset(rows: dict, x, y, step: int, crs, title: str):
     import rioxarray  # noqa: F401
     import xarray as xr
 
-    xs = x[step // 2::step]
+    xs = x[step // 2 :: step]
     ys = y[::step]
     data = {n: (("y", "x"), np.concatenate(v, axis=0), variable_attrs(n)) for n, v in rows.items()}
-    ds = xr.Dataset(data, coords={"y": ys[:data["flux_east"][1].shape[0]], "x": xs})
+    ds = xr.Dataset(data, coords={"y": ys[: data["flux_east"][1].shape[0]], "x": xs})
     ds.attrs["title"] = title
     return ds.rio.write_crs(crs)

@@ -26,8 +26,18 @@ viscosity = "1e19 Pa*s"
 """
 
 
-def write_grid(path, data, *, crs=UTM, west=300e3, north=5200e3, cell=5e3, cell_y=None,
-               nodata=-9999.0, south_up=False):
+def write_grid(
+    path,
+    data,
+    *,
+    crs=UTM,
+    west=300e3,
+    north=5200e3,
+    cell=5e3,
+    cell_y=None,
+    nodata=-9999.0,
+    south_up=False,
+):
     """Write a float32 GeoTIFF; ``south_up`` writes rows south-to-north (positive y step)."""
     import rasterio
     from rasterio.transform import Affine
@@ -41,8 +51,15 @@ def write_grid(path, data, *, crs=UTM, west=300e3, north=5200e3, cell=5e3, cell_
     else:
         transform = Affine(cell, 0, west, 0, -cy, north)
     out = np.where(np.isfinite(data), data, nodata).astype("float32")
-    profile = dict(driver="GTiff", width=data.shape[1], height=data.shape[0], count=1,
-                   dtype="float32", transform=transform, nodata=nodata)
+    profile = dict(
+        driver="GTiff",
+        width=data.shape[1],
+        height=data.shape[0],
+        count=1,
+        dtype="float32",
+        transform=transform,
+        nodata=nodata,
+    )
     if crs is not None:
         profile["crs"] = crs
     with rasterio.open(path, "w", **profile) as dst:

@@ -68,8 +68,12 @@ def test_geotiffs_read_back(demo_run):
                     assert src.nodata == 255
                 else:
                     assert np.isnan(src.nodata)
-                np.testing.assert_allclose(data.astype("float64").filled(np.nan), ds[name].values, rtol=1e-6,
-                                           equal_nan=True)
+                np.testing.assert_allclose(
+                    data.astype("float64").filled(np.nan),
+                    ds[name].values,
+                    rtol=1e-6,
+                    equal_nan=True,
+                )
 
 
 def test_manifest(demo_run):
@@ -82,7 +86,9 @@ def test_manifest(demo_run):
 
 
 def test_lonlat_demo(tmp_path):
-    assert main(["demo", "--scenario", "plateau-lonlat", "--out", str(tmp_path / "o"), "--quiet"]) == 0
+    assert (
+        main(["demo", "--scenario", "plateau-lonlat", "--out", str(tmp_path / "o"), "--quiet"]) == 0
+    )
     with xr.open_dataset(tmp_path / "o" / "fields.nc", decode_coords="all") as ds:
         assert ds.rio.crs.to_epsg() == 4326
         assert np.isfinite(ds.flux_magnitude.values).mean() > 0.9
@@ -106,33 +112,63 @@ def _bad_cases(d):
     """(description, scenario text, setup, expected message) for each bad input."""
     topo = bump()
     cases = {
-        "missing file": (SCENARIO.replace("crust.tif", "nothere.tif"), None,
-                         r"grids.crust_thickness: file not found"),
-        "not a raster": (SCENARIO.replace("crust.tif", "notes.txt"),
-                         lambda: (d / "notes.txt").write_text("hello"), r"is not a raster"),
-        "bare number": (SCENARIO.replace('"15 km"', "15"), None, r"channel.thickness = 15 has no "
-                        r"units"),
-        "unknown key": (SCENARIO.replace("viscosity =", "viscosty ="), None,
-                        r"unknown key 'viscosty'.*did you mean 'viscosity'"),
-        "negative viscosity": (SCENARIO.replace('"1e19 Pa*s"', '"-1e19 Pa*s"'), None,
-                               r"channel.viscosity must be positive"),
-        "zero viscosity": (SCENARIO.replace('"1e19 Pa*s"', '"0 Pa*s"'), None,
-                           r"channel.viscosity must be positive"),
-        "channel thicker than crust": (SCENARIO.replace('"15 km"', '"45 km"'), None,
-                                       r"channel.thickness \(45 km\) is not less than the crustal "
-                                       r"thickness"),
-        "no overlap": (SCENARIO.replace("crust.tif", "far.tif"),
-                       lambda: write_grid(d / "far.tif", airy(topo), west=900e3),
-                       r"does not overlap the topography grid"),
-        "all nodata": (SCENARIO.replace("crust.tif", "empty.tif"),
-                       lambda: write_grid(d / "empty.tif", np.full_like(topo, np.nan)),
-                       r"holds no valid cells"),
-        "thickness in km": (SCENARIO.replace("crust.tif", "km.tif"),
-                            lambda: write_grid(d / "km.tif", airy(topo) / 1e3),
-                            r"values look like kilometres \(max \d+(\.\d+)?\); give the grid in metres"),
-        "no crs": (SCENARIO.replace("topo.tif", "nocrs.tif"),
-                   lambda: write_grid(d / "nocrs.tif", topo, crs=None),
-                   r"carries no CRS; .*crs = \"EPSG:...\""),
+        "missing file": (
+            SCENARIO.replace("crust.tif", "nothere.tif"),
+            None,
+            r"grids.crust_thickness: file not found",
+        ),
+        "not a raster": (
+            SCENARIO.replace("crust.tif", "notes.txt"),
+            lambda: (d / "notes.txt").write_text("hello"),
+            r"is not a raster",
+        ),
+        "bare number": (
+            SCENARIO.replace('"15 km"', "15"),
+            None,
+            r"channel.thickness = 15 has no "
+            r"units",
+        ),
+        "unknown key": (
+            SCENARIO.replace("viscosity =", "viscosty ="),
+            None,
+            r"unknown key 'viscosty'.*did you mean 'viscosity'",
+        ),
+        "negative viscosity": (
+            SCENARIO.replace('"1e19 Pa*s"', '"-1e19 Pa*s"'),
+            None,
+            r"channel.viscosity must be positive",
+        ),
+        "zero viscosity": (
+            SCENARIO.replace('"1e19 Pa*s"', '"0 Pa*s"'),
+            None,
+            r"channel.viscosity must be positive",
+        ),
+        "channel thicker than crust": (
+            SCENARIO.replace('"15 km"', '"45 km"'),
+            None,
+            r"channel.thickness \(45 km\) is not less than the crustal "
+            r"thickness",
+        ),
+        "no overlap": (
+            SCENARIO.replace("crust.tif", "far.tif"),
+            lambda: write_grid(d / "far.tif", airy(topo), west=900e3),
+            r"does not overlap the topography grid",
+        ),
+        "all nodata": (
+            SCENARIO.replace("crust.tif", "empty.tif"),
+            lambda: write_grid(d / "empty.tif", np.full_like(topo, np.nan)),
+            r"holds no valid cells",
+        ),
+        "thickness in km": (
+            SCENARIO.replace("crust.tif", "km.tif"),
+            lambda: write_grid(d / "km.tif", airy(topo) / 1e3),
+            r"values look like kilometres \(max \d+(\.\d+)?\); give the grid in metres",
+        ),
+        "no crs": (
+            SCENARIO.replace("topo.tif", "nocrs.tif"),
+            lambda: write_grid(d / "nocrs.tif", topo, crs=None),
+            r"carries no CRS; .*crs = \"EPSG:...\"",
+        ),
     }
     return cases
 
@@ -164,12 +200,17 @@ def test_output_folder_holding_inputs_is_refused(scenario_dir, capsys):
 def test_installed_command_no_traceback(tmp_path):
     # The real entry point in a subprocess: bad input is one line on stderr, exit 2.
     (tmp_path / "s.toml").write_text('[grids]\ntopography = "t.tif"\n')
-    proc = subprocess.run([sys.executable, "-m", "crustflow", "run", str(tmp_path / "s.toml")],
-                          capture_output=True, text=True, cwd=tmp_path)
+    proc = subprocess.run(
+        [sys.executable, "-m", "crustflow", "run", str(tmp_path / "s.toml")],
+        capture_output=True,
+        text=True,
+        cwd=tmp_path,
+    )
     assert proc.returncode == 2
     assert "Traceback" not in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
-    help_text = subprocess.run([sys.executable, "-m", "crustflow", "run", "--help"],
-                               capture_output=True, text=True).stdout
+    help_text = subprocess.run(
+        [sys.executable, "-m", "crustflow", "run", "--help"], capture_output=True, text=True
+    ).stdout
     assert "no basis for hazard or engineering decisions" in " ".join(help_text.split())
 
 
@@ -177,7 +218,8 @@ def test_grids_with_shared_pixel_grid_but_no_crs_use_the_scenario_crs(tmp_path):
     topo = bump()
     write_grid(tmp_path / "topo.tif", topo, crs=None)
     write_grid(tmp_path / "crust.tif", airy(topo), crs=None)
-    text = SCENARIO.replace('crust_thickness = "crust.tif"',
-                            f'crust_thickness = "crust.tif"\ncrs = "{UTM}"')
+    text = SCENARIO.replace(
+        'crust_thickness = "crust.tif"', f'crust_thickness = "crust.tif"\ncrs = "{UTM}"'
+    )
     (tmp_path / "s.toml").write_text(text)
     assert main(["run", str(tmp_path / "s.toml"), "--out", str(tmp_path / "o"), "--quiet"]) == 0

@@ -65,14 +65,16 @@ def test_channel_density_term_on_tilted_moho():
 
 def test_water_load():
     # Lithostatic sum by hand (SCIENCE.md): 2 km of sea water over 20 km of crust above the channel.
-    p = load.overburden_pressure(np.array(-2000.0), np.array(35e3), 15e3, rho_crust=RHO_C,
-                                 rho_water=RHO_W, gravity=G)
+    p = load.overburden_pressure(
+        np.array(-2000.0), np.array(35e3), 15e3, rho_crust=RHO_C, rho_water=RHO_W, gravity=G
+    )
     assert float(p) == pytest.approx(G * (RHO_W * 2000.0 + RHO_C * 20e3), rel=1e-14)
 
 
 def test_uplift_factors():
     # SCIENCE.md (Airy compensation): land (1 - rho_ch/rho_m), water (rho_m - rho_ch)/(rho_m - rho_w).
     rate = np.array([1.0, 1.0])
-    up = load.uplift_rate(rate, np.array([100.0, -100.0]), rho_channel=RHO_C, rho_mantle=RHO_M,
-                          rho_water=RHO_W)
+    up = load.uplift_rate(
+        rate, np.array([100.0, -100.0]), rho_channel=RHO_C, rho_mantle=RHO_M, rho_water=RHO_W
+    )
     np.testing.assert_allclose(up, [1 - RHO_C / RHO_M, (RHO_M - RHO_C) / (RHO_M - RHO_W)])

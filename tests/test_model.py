@@ -37,16 +37,22 @@ def test_analytic_plateau_projected():
     # Analytic: G = rho_c g grad(H) (Bird 1991), q = -h^3 G/(12 eta), -div q = h^3 rho g lap(H)/(12 eta)
     # (Turcotte & Schubert 2002, 6.2). Interior reproduced to 0.2 %.
     x, y, h, dhdx, dhdy, lap = gaussian_projected()
-    ds = crustflow.compute_fields(grid(h, x, y, "EPSG:32633"), parameters=PARAMS,
-                                  crust_thickness=grid(airy(h), x, y, "EPSG:32633"))
+    ds = crustflow.compute_fields(
+        grid(h, x, y, "EPSG:32633"),
+        parameters=PARAMS,
+        crust_thickness=grid(airy(h), x, y, "EPSG:32633"),
+    )
     k = (15e3) ** 3 / (12 * 1e19) * SECONDS_PER_YEAR  # m^2/yr per Pa/m
     inner = (slice(5, -5), slice(5, -5))
     q_e = -k * RHO * G * dhdx
     big = np.abs(q_e[inner]) > 0.05 * np.abs(q_e).max()
     rel = np.abs(ds.flux_east.values[inner] - q_e[inner])[big] / np.abs(q_e[inner])[big]
     assert rel.max() < 2e-3
-    np.testing.assert_allclose(ds.drive_north.values[inner], (RHO * G * dhdy)[inner],
-                               atol=2e-3 * np.abs(RHO * G * dhdy).max())
+    np.testing.assert_allclose(
+        ds.drive_north.values[inner],
+        (RHO * G * dhdy)[inner],
+        atol=2e-3 * np.abs(RHO * G * dhdy).max(),
+    )
     thick = k * RHO * G * lap * 1e3  # mm/yr
     err = np.abs(ds.thickening_rate.values[inner] - thick[inner]).max()
     assert err < 2e-3 * np.abs(thick).max()
@@ -68,8 +74,11 @@ def test_analytic_plateau_geographic():
     dh_dphi = -h * (la - 45) / s**2 * 180 / np.pi
     ge = RHO * G * dh_dlam / (n_rad * np.cos(phi))
     gn = RHO * G * dh_dphi / m_rad
-    ds = crustflow.compute_fields(grid(h, lon, lat, "EPSG:4326"), parameters=PARAMS,
-                                  crust_thickness=grid(airy(h), lon, lat, "EPSG:4326"))
+    ds = crustflow.compute_fields(
+        grid(h, lon, lat, "EPSG:4326"),
+        parameters=PARAMS,
+        crust_thickness=grid(airy(h), lon, lat, "EPSG:4326"),
+    )
     inner = (slice(5, -5), slice(5, -5))
     for got, want in ((ds.drive_east.values, ge), (ds.drive_north.values, gn)):
         big = np.abs(want[inner]) > 0.05 * np.abs(want).max()
@@ -90,8 +99,9 @@ def test_volume_is_conserved(crs):
         x = 300e3 + 5e3 * np.arange(70)
         y = 5200e3 - 5e3 * np.arange(60)
     params = ModelParameters(channel_thickness=15e3, viscosity=1e19, wall_east=1e-10)
-    ds = crustflow.compute_fields(grid(h, x, y, crs), parameters=params,
-                                  crust_thickness=grid(airy(h), x, y, crs))
+    ds = crustflow.compute_fields(
+        grid(h, x, y, crs), parameters=params, crust_thickness=grid(airy(h), x, y, crs)
+    )
     # The wall adds a uniform flux U h / 2: what enters on the west leaves on the east, net zero.
     area = cell_areas(grid_geometry(x, y, crs))
     rate = ds.thickening_rate.values * area
@@ -136,11 +146,11 @@ def test_misaligned_crust_grid_is_resampled(tmp_path):
     ys = 5200e3 - 5e3 * np.arange(40) - 2.5e3
     from scipy.interpolate import RegularGridInterpolator
 
-    interp = RegularGridInterpolator((ys[::-1], xs), airy(topo)[::-1], bounds_error=False,
-                                     fill_value=None, method="cubic")
+    interp = RegularGridInterpolator(
+        (ys[::-1], xs), airy(topo)[::-1], bounds_error=False, fill_value=None, method="cubic"
+    )
     crust_geo = interp(np.stack([py, px], axis=-1))
-    write_grid(tmp_path / "c_geo.tif", crust_geo, crs="EPSG:4326", west=lon0, north=lat1,
-               cell=step)
+    write_grid(tmp_path / "c_geo.tif", crust_geo, crs="EPSG:4326", west=lon0, north=lat1, cell=step)
     base = {"channel": {"thickness": "15 km", "viscosity": "1e19 Pa*s"}}
     runs = {}
     for name in ("c.tif", "c_geo.tif"):
@@ -149,8 +159,9 @@ def test_misaligned_crust_grid_is_resampled(tmp_path):
     a, b = runs["c.tif"], runs["c_geo.tif"]
     assert "bilinear" in b.attrs["crustflow_inputs"]
     inner = (slice(3, -3), slice(3, -3))
-    np.testing.assert_allclose(b.crust_thickness.values[inner], a.crust_thickness.values[inner],
-                               atol=0.3)  # km: bilinear interpolation error of a smooth field
+    np.testing.assert_allclose(
+        b.crust_thickness.values[inner], a.crust_thickness.values[inner], atol=0.3
+    )  # km: bilinear interpolation error of a smooth field
 
 
 def test_nodata_stays_local(tmp_path):
@@ -158,8 +169,11 @@ def test_nodata_stays_local(tmp_path):
     x, y, h, *_ = gaussian_projected(n=41, cell=5e3)
     h = h.copy()
     h[20, 20] = np.nan
-    ds = crustflow.compute_fields(grid(h, x, y, "EPSG:32633"), parameters=PARAMS,
-                                  crust_thickness=grid(airy(np.nan_to_num(h)), x, y, "EPSG:32633"))
+    ds = crustflow.compute_fields(
+        grid(h, x, y, "EPSG:32633"),
+        parameters=PARAMS,
+        crust_thickness=grid(airy(np.nan_to_num(h)), x, y, "EPSG:32633"),
+    )
     missing = ~np.isfinite(ds.flux_east.values)
     assert missing.sum() == 1 and missing[20, 20]
     assert np.isfinite(ds.thickening_rate.values).sum() == h.size - 1

@@ -43,8 +43,10 @@ def test_defaults_and_resolution(tmp_path):
 def test_relative_paths_resolve_against_the_scenario_folder(tmp_path):
     sub = tmp_path / "case"
     sub.mkdir()
-    (sub / "s.toml").write_text('[grids]\ntopography = "g/t.tif"\nreference_thickness = "35 km"\n'
-                                '[channel]\nthickness = "10 km"\nviscosity = "1e20 Pa*s"\n')
+    (sub / "s.toml").write_text(
+        '[grids]\ntopography = "g/t.tif"\nreference_thickness = "35 km"\n'
+        '[channel]\nthickness = "10 km"\nviscosity = "1e20 Pa*s"\n'
+    )
     s = load_scenario(sub / "s.toml")
     assert s.topography == sub.resolve() / "g" / "t.tif"
     assert s.parameters.reference_thickness == 35e3
@@ -64,15 +66,24 @@ def test_wall_velocity_vector():
         ({"channel": {"viscosity": "1e19 kg"}}, r"expected a viscosity"),
         ({"channel": {"viscosity": "-1e19 Pa*s"}}, r"channel.viscosity must be positive"),
         ({"channel": {"viscosity": "0 Pa*s"}}, r"channel.viscosity must be positive"),
-        ({"channel": {"thicknes": "15 km"}}, r"unknown key 'thicknes' in \[channel\]; did you mean "
-                                             r"'thickness'\?"),
-        ({"densitys": {"crust": "2800 kg/m^3"}}, r"unknown key 'densitys'.*did you mean 'densities'"),
+        (
+            {"channel": {"thicknes": "15 km"}},
+            r"unknown key 'thicknes' in \[channel\]; did you mean "
+            r"'thickness'\?",
+        ),
+        (
+            {"densitys": {"crust": "2800 kg/m^3"}},
+            r"unknown key 'densitys'.*did you mean 'densities'",
+        ),
         ({"densities": {"mantle": "2700 kg/m^3"}}, r"densities.mantle must exceed"),
         ({"walls": {"upper_velocity": ["5 mm/yr"]}}, r"list of two values"),
         ({"output": {"formats": ["netcdf", "shapefile"]}}, r"unknown key 'shapefile'"),
         ({"output": {"variables": ["flux_est"]}}, r"did you mean 'flux_east'"),
-        ({"grids": {"moho_depth": "m.tif"}}, r"at most one of grids.crust_thickness and "
-                                             r"grids.moho_depth"),
+        (
+            {"grids": {"moho_depth": "m.tif"}},
+            r"at most one of grids.crust_thickness and "
+            r"grids.moho_depth",
+        ),
     ],
 )
 def test_bad_values_name_the_key_and_the_fix(tables, message):

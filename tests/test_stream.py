@@ -13,8 +13,20 @@ from crustflow.model import VARIABLES
 
 
 def _compare(scenario_path, out, strip_rows):
-    assert main(["run", str(scenario_path), "--out", str(out), "--quiet",
-                 "--strip-rows", str(strip_rows)]) == 0
+    assert (
+        main(
+            [
+                "run",
+                str(scenario_path),
+                "--out",
+                str(out),
+                "--quiet",
+                "--strip-rows",
+                str(strip_rows),
+            ]
+        )
+        == 0
+    )
     whole = crustflow.solve(crustflow.load_scenario(scenario_path))
     with xr.open_dataset(out / "fields.nc") as ds:
         for name in VARIABLES:
@@ -40,8 +52,15 @@ def test_strips_equal_whole_grid_projected_with_nodata(tmp_path, strip_rows):
 def test_strips_equal_whole_grid_geographic_south_up_misaligned(tmp_path, strip_rows):
     # Geographic topography with rows stored south to north, crust on a coarser grid: resampled.
     topo = bump(shape=(21, 25), cell=1.0, radius=9.0)
-    write_grid(tmp_path / "topo.tif", topo, crs="EPSG:4326", west=10.0, north=47.0, cell=0.05,
-               south_up=True)
+    write_grid(
+        tmp_path / "topo.tif",
+        topo,
+        crs="EPSG:4326",
+        west=10.0,
+        north=47.0,
+        cell=0.05,
+        south_up=True,
+    )
     crust = airy(bump(shape=(12, 14), cell=1.0, radius=5.0))
     write_grid(tmp_path / "crust.tif", crust, crs="EPSG:4326", west=9.98, north=47.02, cell=0.1)
     (tmp_path / "scenario.toml").write_text(SCENARIO)
