@@ -94,19 +94,14 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
 def _summary(result: dict) -> None:
     from .model import VARIABLES
 
-    for name, label in (
-        ("flux_magnitude", "flux magnitude"),
-        ("thickening_rate", "thickening rate"),
-        ("uplift_rate", "uplift rate"),
-    ):
-        lo, hi = result["ranges"][name]
+    labels = {"flux_magnitude": "flux magnitude", "thickening_rate": "thickening rate",
+              "uplift_rate": "uplift rate"}
+    for name, (lo, hi) in result["ranges"].items():
         unit = VARIABLES[name].units
-        print(
-            f"  {label:<16} {lo:.3g} to {hi:.3g} {unit}"
-            if lo <= hi
-            else f"  {label:<16} no valid cells"
-        )
-    print(f"  backflow cells   {result['backflow_cells']} of {result['valid_cells']}")
+        text = f"{lo:.3g} to {hi:.3g} {unit}" if lo <= hi else "no valid cells"
+        print(f"  {labels[name]:<16} {text}")
+    if result["backflow_cells"] is not None:
+        print(f"  backflow cells   {result['backflow_cells']} of {result['valid_cells']}")
 
 
 def _check(scenario_path: Path) -> int:

@@ -653,19 +653,28 @@ def _row_bounds(geom: GridGeometry) -> np.ndarray:
 
 def _axis_derivative(f: np.ndarray, axis: int, step: float) -> np.ndarray:
     """d f / d coordinate along ``axis``: central, or one-sided next to NaN and at the edges."""
-    pad = [(0, 0), (0, 0)]
-    pad[axis] = (1, 1)
-    padded = np.pad(f, pad, constant_values=np.nan)
-    n = f.shape[axis]
-    prev = np.take(padded, np.arange(0, n), axis=axis)
-    nxt = np.take(padded, np.arange(2, n + 2), axis=axis)
-    has_prev, has_next = ~np.isnan(prev), ~np.isnan(nxt)
+
+    def part(sl: slice) -> tuple:
+        return (sl, slice(None)) if axis == 0 else (slice(None), sl)
+
+    out = np.empty_like(f)
+    inv2, inv1 = 0.5 / step, 1.0 / step
+    prev, here, nxt = f[part(slice(None, -2))], f[part(slice(1, -1))], f[part(slice(2, None))]
+    inner = out[part(slice(1, -1))]
     with np.errstate(invalid="ignore"):
-        central = (nxt - prev) / (2.0 * step)
-        forward = (nxt - f) / step
-        backward = (f - prev) / step
-    out = np.where(has_prev & has_next, central, np.where(has_next, forward, backward))
-    return np.where(np.isnan(f), np.nan, out)
+        # Interior: central difference where both neighbours are valid ...
+        np.subtract(nxt, prev, out=inner)
+        inner *= inv2
+        # ... else one-sided from the valid neighbour (NaN if there is none).
+        lone = np.isnan(inner)
+        if lone.any():
+            forward = np.where(np.isnan(nxt), (here - prev) * inv1, (nxt - here) * inv1)
+            np.copyto(inner, forward, where=lone)
+        # Grid edges: one-sided from the only neighbour.
+        out[part(slice(0, 1))] = (f[part(slice(1, 2))] - f[part(slice(0, 1))]) * inv1
+        out[part(slice(-1, None))] = (f[part(slice(-1, None))] - f[part(slice(-2, -1))]) * inv1
+    np.copyto(out, f, where=np.isnan(f))  # nodata stays nodata
+    return out
 
 
 def _face_values(q: np.ndarray, axis: int) -> np.ndarray:

@@ -17,7 +17,7 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from . import __version__, load
-from .channel import channel_flow
+from .channel import channel_flow, channel_flux
 from .constants import SECONDS_PER_YEAR
 from .errors import CrustflowInputError
 from .maps import azimuth, divergence, grid_geometry
@@ -92,6 +92,14 @@ VARIABLES: dict[str, Variable] = {
     ),
     "thickening_rate": Variable("crustal thickening rate, -div(q)", "mm yr-1", _MM_YR),
     "uplift_rate": Variable("isostatic surface uplift rate from thickening", "mm yr-1", _MM_YR),
+}
+
+
+#: Variables that need the full one-cell solution, not just the flux.
+_CELL_EXTRAS = {
+    "mean_velocity_east", "mean_velocity_north", "peak_speed", "peak_speed_height",
+    "upper_wall_drag_east", "upper_wall_drag_north", "lower_wall_drag_east",
+    "lower_wall_drag_north", "backflow", "wall_driven_share",
 }
 
 
@@ -187,9 +195,6 @@ def fields_si(
     g_east, g_north = load.driving_gradient(
         p_top, z_top, geometry, rho_channel=p.rho_channel, gravity=p.gravity
     )
-    sol = channel_flow(
-        g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
-    )
     live = valid & np.isfinite(g_east) & np.isfinite(g_north)
     out = {
         "crust_thickness": T,
@@ -198,17 +203,26 @@ def fields_si(
         "drive_east": g_east,
         "drive_north": g_north,
     }
-    out.update(sol.as_dict())
+    if wanted & _CELL_EXTRAS:
+        sol = channel_flow(
+            g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
+        )
+        out.update(sol.as_dict())
+    else:  # only the flux is needed: skip peak speed, drag and backflow
+        out["flux_east"], out["flux_north"] = channel_flux(
+            g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
+        )
+    q_east, q_north = out["flux_east"], out["flux_north"]
     if wanted & {"thickening_rate", "uplift_rate"}:
-        thickening = -divergence(sol.flux_east, sol.flux_north, geometry)
+        thickening = -divergence(q_east, q_north, geometry)
         out["thickening_rate"] = thickening
         out["uplift_rate"] = load.uplift_rate(
             thickening, H, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle, rho_water=p.rho_water
         )
     if "flux_magnitude" in wanted:
-        out["flux_magnitude"] = np.hypot(sol.flux_east, sol.flux_north)
+        out["flux_magnitude"] = np.hypot(q_east, q_north)
     if "flux_azimuth" in wanted:
-        out["flux_azimuth"] = azimuth(sol.flux_east, sol.flux_north, geometry)
+        out["flux_azimuth"] = azimuth(q_east, q_north, geometry)
     result = {}
     for name in VARIABLES:
         if name not in wanted:

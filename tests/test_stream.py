@@ -81,3 +81,20 @@ def test_airy_case_and_moho_depth(tmp_path):
     b = crustflow.solve(crustflow.load_scenario(tmp_path / "moho.toml"))
     # Same crust both ways (Turcotte & Schubert 2002, 2.2), to float32 rounding of the Moho file.
     np.testing.assert_allclose(a.crust_thickness.values, b.crust_thickness.values, atol=1e-2)
+
+
+def test_variable_subset_equals_full_run(tmp_path):
+    # The flux-only path (no peak speed, drag, backflow) gives the same numbers as the full one.
+    topo = bump(shape=(19, 23), radius=50e3)
+    write_grid(tmp_path / "topo.tif", topo)
+    write_grid(tmp_path / "crust.tif", airy(topo))
+    text = SCENARIO + '[walls]\nupper_velocity = ["3 mm/yr", "-1 mm/yr"]\n'
+    text += '[output]\nvariables = ["flux_east", "flux_north", "thickening_rate"]\n'
+    (tmp_path / "scenario.toml").write_text(text)
+    out = tmp_path / "out"
+    assert main(["run", str(tmp_path / "scenario.toml"), "--out", str(out), "--quiet"]) == 0
+    whole = crustflow.solve(crustflow.load_scenario(tmp_path / "scenario.toml"))
+    with xr.open_dataset(out / "fields.nc") as ds:
+        assert set(ds.data_vars) == {"flux_east", "flux_north", "thickening_rate", "spatial_ref"}
+        for name in ("flux_east", "flux_north", "thickening_rate"):
+            np.testing.assert_array_equal(ds[name].values, whole[name].values.astype("float32"))
