@@ -11,6 +11,8 @@ import time
 import warnings
 from pathlib import Path
 
+import numpy as np
+
 from . import __version__
 from .errors import CrustflowInputError
 
@@ -69,7 +71,8 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
         progress(name)
 
     with atomic_folder(out, scenario.input_paths) as tmp:
-        result = run_strips(scenario, tmp, strip_rows=strip_rows, stage=note)
+        result = run_strips(scenario, tmp, strip_rows=strip_rows, stage=note,
+                            progress=not quiet and sys.stderr.isatty())
         written = result["written"]
         if result["figure"] is not None:
             from .plot import flux_map
@@ -105,45 +108,44 @@ def _summary(result: dict) -> None:
 
 
 def _check(scenario_path: Path) -> int:
-    import numpy as np
-
-    from .grids import read_inputs
-    from .model import compute_fields
+    from .grids import GridChecks, close_sources, open_sources
+    from .model import ThinCrustCheck, crust_thickness_of
     from .scenario import load_scenario
+    from .stream import strip_rows_for
 
     scenario = load_scenario(scenario_path)
-    grids = read_inputs(scenario)
     p = scenario.parameters
-    topo = grids.topography
-    print(f"scenario   {scenario.title}")
-    print(
-        f"grid       {topo.sizes['x']} x {topo.sizes['y']} cells, CRS {topo.rio.crs.to_string()}, "
-        f"cell {abs(topo.rio.resolution()[0]):g} x {abs(topo.rio.resolution()[1]):g} "
-        f"{'degrees' if topo.rio.crs.is_geographic else 'm'}"
-    )
-    for key in ("topography", "crust_thickness", "moho_depth"):
-        da = getattr(grids, key)
-        if da is None:
-            continue
-        v = da.values[np.isfinite(da.values)]
-        print(
-            f"{key:<16} {v.min():.6g} to {v.max():.6g} m, {da.size - v.size} nodata cells; "
-            f"{grids.provenance.get(key, {}).get('method', 'read')}"
-        )
-    notes = []
+    sources = open_sources(scenario)
+    try:
+        topo = sources["topography"]
+        checks = GridChecks(sources)
+        thin = ThinCrustCheck(p.channel_thickness)
+        rows = strip_rows_for(topo.width)
+        for r0 in range(0, topo.height, rows):
+            arrays = {k: src.read(r0, min(topo.height, r0 + rows)) for k, src in sources.items()}
+            checks.update(arrays)
+            H = arrays["topography"]
+            T = crust_thickness_of(H, p, crust_thickness=arrays.get("crust_thickness"),
+                                   moho_depth=arrays.get("moho_depth"))
+            thin.update(np.where(np.isfinite(H), T, np.nan))
+        checks.finish()
+        thin.finish()
+        unit = "degrees" if topo.crs.is_geographic else "m"
+        print(f"scenario         {scenario.title}")
+        print(f"grid             {topo.width} x {topo.height} cells, CRS {topo.crs.to_string()}, "
+              f"cell {abs(topo.transform.a):g} x {abs(topo.transform.e):g} {unit}")
+        for key, src in sources.items():
+            cells = topo.width * topo.height
+            print(f"{key:<16} {checks.vmin[key]:.6g} to {checks.vmax[key]:.6g} m, "
+                  f"{cells - checks.count[key]} nodata cells; {src.method}")
+    finally:
+        close_sources(sources)
     if not 1e16 <= p.viscosity <= 1e24:
-        notes.append(
-            f"viscosity {p.viscosity:.3g} Pa s lies outside 1e16-1e24 Pa s, unusual for a "
-            "crustal channel"
-        )
+        print(f"note: viscosity {p.viscosity:.3g} Pa s lies outside 1e16-1e24 Pa s, unusual for a "
+              "crustal channel")
     if not 1e3 <= p.channel_thickness <= 60e3:
-        notes.append(f"channel thickness {p.channel_thickness / 1e3:g} km lies outside 1-60 km")
-    compute_fields(
-        topo, parameters=p, crust_thickness=grids.crust_thickness, moho_depth=grids.moho_depth
-    )
-    for text in notes:
-        print(f"note: {text}")
-    print("check passed: the scenario runs")
+        print(f"note: channel thickness {p.channel_thickness / 1e3:g} km lies outside 1-60 km")
+    print("check passed: the scenario's grids and parameters are usable")
     return 0
 
 

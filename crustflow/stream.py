@@ -11,6 +11,7 @@ Peak memory is set by the strip size, not the grid size.
 from __future__ import annotations
 
 import json
+import sys
 from collections.abc import Callable
 from pathlib import Path
 
@@ -51,6 +52,7 @@ def run_strips(
     *,
     strip_rows: int | None = None,
     stage: Callable[[str], None] | None = None,
+    progress: bool = False,
 ) -> dict:
     """Compute a scenario strip by strip and write its NetCDF and GeoTIFF outputs into ``folder``.
 
@@ -64,6 +66,8 @@ def run_strips(
         Rows per strip (default: from :data:`CELLS_PER_STRIP`).
     stage : callable, optional
         Called with a stage name as work starts.
+    progress : bool
+        Show a progress bar of rows done on stderr (for grids of more than a few strips).
 
     Returns
     -------
@@ -134,7 +138,12 @@ def run_strips(
         thin = ThinCrustCheck(p.channel_thickness)
         rows = strip_rows or strip_rows_for(width)
         note("compute and write")
+        from tqdm import tqdm
+
+        bar = tqdm(total=height, unit=" rows", desc="crustflow", leave=False, file=sys.stderr,
+                   disable=not progress or height <= rows, dynamic_ncols=True)
         for r0 in range(0, height, rows):
+            bar.update(min(height, r0 + rows) - r0)
             r1 = min(height, r0 + rows)
             a, b = max(0, r0 - HALO_ROWS), min(height, r1 + HALO_ROWS)
             arrays = {key: src.read(a, b) for key, src in sources.items()}
@@ -171,6 +180,7 @@ def run_strips(
                 first = (-r0) % step
                 for n in figure_vars:
                     fig_rows[n].append(out[n][first::step, step // 2 :: step])
+        bar.close()
         checks.finish()  # on early exit these stats are partial: enough to name the likely cause
         thin.finish()
         for w in writers:

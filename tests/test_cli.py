@@ -189,6 +189,9 @@ def test_bad_input_exit_2_one_line_no_output(scenario_dir, capsys, case):
     assert re.search(message, err), err
     assert not out.exists()
     assert not [p for p in scenario_dir.iterdir() if ".partial-" in p.name]
+    # `check` finds the same problem, with the same message
+    assert main(["check", str(scenario_dir / "bad.toml")]) == 2
+    assert re.search(message, capsys.readouterr().err)
     assert {p: p.stat().st_mtime_ns for p in scenario_dir.iterdir() if p in before} == before
 
 
