@@ -435,3 +435,15 @@ def test_bad_inputs_raise_with_fix_it_messages():
         gradient(np.zeros((3, 2)), geom)
     with pytest.raises(CrustflowInputError, match="needs the projected grid's crs"):
         meridian_convergence(geom)
+
+
+def test_interpolated_convergence_matches_pyproj_at_every_cell():
+    # Reference library: pyproj get_factors at every cell of a 250 m UTM grid at the zone's western
+    # edge near 63 N; the interpolated map (crustflow.maps.CONVERGENCE_SPACING) agrees to 1e-6 degree.
+    x = 160e3 + 250.0 * np.arange(401)
+    y = 7000e3 - 250.0 * np.arange(41)
+    geom = grid_geometry(x, y, "EPSG:32633")
+    to_lonlat = pyproj.Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True)
+    lon, lat = to_lonlat.transform(*np.meshgrid(x, y))
+    exact = pyproj.Proj("EPSG:32633").get_factors(lon, lat).meridian_convergence
+    assert np.abs(meridian_convergence(geom) - exact).max() < 1e-6
