@@ -70,10 +70,22 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
         clock.update(name=name, t=now)
         progress(name)
 
+    budgets = scenario.sections is not None or scenario.regions is not None
+    if budgets:
+        _check_features(scenario)
     with atomic_folder(out, scenario.input_paths) as tmp:
         result = run_strips(scenario, tmp, strip_rows=strip_rows, stage=note,
-                            progress=not quiet and sys.stderr.isatty())
+                            progress=not quiet and sys.stderr.isatty(),
+                            budget_fields=tmp / ".budget_fields.nc" if budgets else None)
         written = result["written"]
+        table = None
+        if budgets:
+            note("budgets")
+            table, files = _write_budgets(result["budget_fields"], tmp, scenario.sections,
+                                          scenario.regions, scenario.title)
+            written += files
+            if result["budget_fields"].name != "fields.nc":
+                result["budget_fields"].unlink()
         if result["figure"] is not None:
             from .plot import flux_map
 
@@ -91,7 +103,50 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
             file=sys.stderr,
         )
         _summary(result)
+        if table is not None:
+            _print_table(table)
     return 0
+
+
+def _check_features(scenario) -> None:
+    """Read the scenario's section and region files once, so that bad ones fail before any work."""
+    from .budgets import read_features
+    from .grids import close_sources, open_sources
+
+    sources = open_sources(scenario)
+    try:
+        crs = sources["topography"].crs
+    finally:
+        close_sources(sources)
+    if scenario.sections is not None:
+        read_features(scenario.sections, "sections", crs)
+    if scenario.regions is not None:
+        read_features(scenario.regions, "regions", crs)
+
+
+def _write_budgets(fields_path: Path, folder: Path, sections, regions, title: str):
+    import xarray as xr
+
+    from .budgets import write_budget_outputs
+
+    with xr.open_dataset(fields_path, decode_coords="all") as fields:
+        fields = fields.load()
+    files = write_budget_outputs(fields, folder, sections=sections, regions=regions, title=title)
+    import pandas as pd
+
+    return pd.read_csv(folder / "budgets.csv"), files
+
+
+def _print_table(table) -> None:
+    """The budget table on the terminal: totals in km^3/Myr (1 km^3/Myr = 1000 m^3/yr)."""
+    print("  budgets (sections: positive to the right of the line's direction; regions: net inflow)")
+    print(f"  {'name':<24} {'kind':<8} {'km3/Myr':>12} {'length km':>10} {'area km2':>12} "
+          f"{'covered':>8}")
+    for row in table.itertuples():
+        length = "" if row.length_km != row.length_km else f"{row.length_km:.1f}"
+        area = "" if row.area_km2 != row.area_km2 else f"{row.area_km2:.0f}"
+        print(f"  {str(row.name)[:24]:<24} {row.kind:<8} {row.volume_flux_km3_per_Myr:>12.4g} "
+              f"{length:>10} {area:>12} {row.covered_fraction:>8.2f}")
 
 
 def _summary(result: dict) -> None:
@@ -147,6 +202,71 @@ def _check(scenario_path: Path) -> int:
         print(f"note: channel thickness {p.channel_thickness / 1e3:g} km lies outside 1-60 km")
     print("check passed: the scenario's grids and parameters are usable")
     return 0
+
+
+def _budget(scenario_path: Path, sections, regions, run_dir: Path, out: Path,
+            quiet: bool) -> int:
+    import dataclasses
+
+    from .export import atomic_folder, base_manifest, write_manifest
+    from .scenario import load_scenario
+    from .stream import BUDGET_VARIABLES, run_strips
+
+    scenario = load_scenario(scenario_path)
+    scenario = dataclasses.replace(
+        scenario,
+        sections=Path(sections).resolve() if sections else scenario.sections,
+        regions=Path(regions).resolve() if regions else scenario.regions,
+    )
+    if scenario.sections is None and scenario.regions is None:
+        raise CrustflowInputError("give --sections FILE and/or --regions FILE (or a [budgets] table "
+                                  "in the scenario)")
+    _check_features(scenario)
+    fields_nc = run_dir.expanduser().resolve() / "fields.nc"
+    reuse = fields_nc.is_file() and _same_run(fields_nc.parent, scenario, BUDGET_VARIABLES)
+    with atomic_folder(out, scenario.input_paths) as tmp:
+        if reuse:
+            path = fields_nc
+        else:
+            result = run_strips(dataclasses.replace(scenario, formats=()), tmp,
+                                budget_fields=tmp / ".budget_fields.nc")
+            path = result["budget_fields"]
+        table, files = _write_budgets(path, tmp, scenario.sections, scenario.regions,
+                                      scenario.title)
+        if not reuse:
+            path.unlink()
+        manifest = base_manifest(scenario, {})
+        manifest["fields"] = str(fields_nc) if reuse else "computed for this command"
+        write_manifest(tmp, manifest, files)
+    if not quiet:
+        how = f"reused {fields_nc}" if reuse else "computed the fields (no matching earlier run)"
+        print(f"crustflow: {how}; wrote {out.expanduser().resolve()}", file=sys.stderr)
+    _print_table(table)
+    return 0
+
+
+def _same_run(run_dir: Path, scenario, needed) -> bool:
+    """Does ``run_dir`` hold a run of this scenario (same grids, same parameters) with ``needed``?"""
+    import json
+
+    import netCDF4
+
+    from .grids import file_checksum
+
+    try:
+        manifest = json.loads((run_dir / "run.json").read_text())
+        with netCDF4.Dataset(run_dir / "fields.nc") as nc:
+            if not set(needed) <= set(nc.variables):
+                return False
+    except (OSError, ValueError):
+        return False
+    then = manifest.get("scenario_resolved_SI", {})
+    now = json.loads(json.dumps(scenario.resolved()))
+    if then.get("parameters_SI") != now["parameters_SI"] or then.get("grids") != now["grids"]:
+        return False
+    inputs = manifest.get("inputs", {})
+    grids = [p for p in (scenario.topography, scenario.crust_thickness, scenario.moho_depth) if p]
+    return all(inputs.get(str(p), {}).get("sha256") == file_checksum(p) for p in grids)
 
 
 def _demo(out: Path, quiet: bool, scenario_name: str) -> int:
@@ -206,6 +326,23 @@ def build_parser() -> argparse.ArgumentParser:
         help="which sample scenario: plateau (projected, default) or plateau-lonlat",
     )
     demo.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    budget = sub.add_parser(
+        "budget", help="volume budgets across sections and regions",
+        description="Volume budgets of channel flow across lines (sections) and polygons (regions) "
+        "drawn in a GIS: writes budgets.csv, budgets.gpkg, flux_arrows.gpkg and figures, and "
+        "prints the table. Reuses the fields.nc of an earlier run of the same scenario when there "
+        "is one (--run), else computes the fields. Section flux is positive towards the right-hand "
+        "side of the line walked from its first to its last vertex; a region's total is its net "
+        "inflow. 1 km^3/Myr = 1000 m^3/yr.\n\n" + CAUTION_HELP, **common)
+    budget.add_argument("scenario", type=Path, help="scenario file (TOML)")
+    budget.add_argument("--sections", type=Path, help="lines (any vector format, any CRS)")
+    budget.add_argument("--regions", type=Path, help="polygons (any vector format, any CRS)")
+    budget.add_argument("--run", type=Path, default=Path("crustflow_out"),
+                        help="folder of an earlier run whose fields.nc to reuse "
+                        "(default: ./crustflow_out)")
+    budget.add_argument("--out", type=Path, default=Path("crustflow_budgets"),
+                        help="output folder (default: ./crustflow_budgets)")
+    budget.add_argument("--quiet", action="store_true", help="print only the table and errors")
     check = sub.add_parser(
         "check",
         help="validate a scenario and its grids without writing anything",
@@ -233,6 +370,9 @@ def main(argv: list[str] | None = None) -> int:
             return _run(args.scenario, args.out, args.quiet, args.strip_rows)
         if args.command == "demo":
             return _demo(args.out, args.quiet, args.scenario)
+        if args.command == "budget":
+            return _budget(args.scenario, args.sections, args.regions, args.run, args.out,
+                           args.quiet)
         if args.command == "check":
             return _check(args.scenario)
     except CrustflowInputError as exc:

@@ -217,7 +217,7 @@ class GeotiffWriter:
         self.dst.close()
 
 
-def netcdf_attrs(title: str, scenario_text: str = "") -> dict:
+def netcdf_attrs(title: str, scenario_text: str = "", parameters: dict | None = None) -> dict:
     """Global attributes of ``fields.nc``."""
     from . import __version__
     from .model import CAUTION
@@ -232,6 +232,7 @@ def netcdf_attrs(title: str, scenario_text: str = "") -> dict:
         "caution": CAUTION,
         "crustflow_version": __version__,
         "scenario": scenario_text,
+        "parameters_SI": json.dumps(parameters or {}),
     }
 
 
@@ -252,7 +253,8 @@ def write_netcdf(
         Extra global attributes (scenario text, provenance).
     """
     names = _file_variables(ds, variables)
-    glob = netcdf_attrs(ds.attrs.get("title", "crustflow"))
+    glob = netcdf_attrs(ds.attrs.get("title", "crustflow"),
+                        parameters=json.loads(ds.attrs.get("parameters_SI", "{}")))
     glob.update(attrs or {})
     writer = NetcdfWriter(
         path,

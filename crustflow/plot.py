@@ -14,6 +14,9 @@ import xarray as xr
 
 __all__ = ["flux_map", "arrow_stride"]
 
+#: Share of the figure's height kept free at the foot for the caution line.
+FOOT_SHARE = 0.05
+
 #: Number of arrows across the wider side of the map. Common practice, no source.
 ARROWS_ACROSS = 25
 
@@ -94,6 +97,7 @@ def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi:
     ax.set_ylabel("latitude (degrees)" if geographic else f"y ({unit})")
     ax.set_aspect(1.0 / np.cos(np.deg2rad(np.nanmean(y))) if geographic else "equal")
     ax.set_title(title or ds.attrs.get("title", "crustflow"))
+    fig.get_layout_engine().set(rect=(0.0, FOOT_SHARE, 1.0, 1.0 - FOOT_SHARE))  # room for the caution
     fig.text(
         0.01,
         0.005,

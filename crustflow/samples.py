@@ -52,6 +52,10 @@ viscosity = "1e19 Pa*s"
 
 [walls]
 upper_velocity = ["2 mm/yr", "-5 mm/yr"]
+
+[budgets]
+sections = "{features}margins.geojson"
+regions = "{features}basins.geojson"
 """
 
 
@@ -133,7 +137,8 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
         ys = np.arange(north - cell / 2, south, -cell)
         xx, yy = np.meshgrid(xs, ys)
         _write(out / name, func(xx, yy), SAMPLE_CRS, from_origin(west, north, cell, cell), text)
-    (out / "scenario.toml").write_text(SCENARIO_TEXT.format(suffix=""))
+    _write_features(out)
+    (out / "scenario.toml").write_text(SCENARIO_TEXT.format(suffix="", features=""))
     written.append(out / "scenario.toml")
     # Geographic: the same analytic region on a 0.04 x 0.04 degree WGS84 grid (both grids).
     to_utm = Transformer.from_crs("EPSG:4326", SAMPLE_CRS, always_xy=True)
@@ -164,9 +169,40 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
         transform,
         "crustal thickness, surface to Moho (m)",
     )
-    (out / "scenario.toml").write_text(SCENARIO_TEXT.format(suffix=", lon/lat grid"))
+    (out / "scenario.toml").write_text(
+        SCENARIO_TEXT.format(suffix=", lon/lat grid", features="../plateau/")
+    )
     written.append(out / "scenario.toml")
     return written
+
+
+#: Sample sections (lines, projected km) and regions (polygons, projected km), as drawn by hand.
+SAMPLE_SECTIONS = {
+    # walked east to west: the positive (right-hand) side is north, out of the plateau
+    "Varnessa Scarp": [(640.0, 3740.0), (300.0, 3740.0)],
+    # walked south to north: the positive side is east, down the gentle flank
+    "Eastern flank": [(700.0, 3480.0), (690.0, 3600.0), (700.0, 3720.0)],
+}
+SAMPLE_REGIONS = {
+    "Plateau interior": [(330.0, 3520.0), (640.0, 3520.0), (640.0, 3720.0), (330.0, 3720.0)],
+    "Lune Sea shelf": [(120.0, 3320.0), (300.0, 3320.0), (300.0, 3440.0), (120.0, 3440.0)],
+}
+
+
+def _write_features(folder: Path) -> None:
+    """Write the sample sections and regions as GeoJSON in lon/lat (they are reprojected on use)."""
+    import geopandas as gpd
+    from shapely.geometry import LineString, Polygon
+
+    for name, shapes, kind in (("margins.geojson", SAMPLE_SECTIONS, LineString),
+                               ("basins.geojson", SAMPLE_REGIONS, Polygon)):
+        geoms = [kind([(x * 1e3, y * 1e3) for x, y in pts]) for pts in shapes.values()]
+        frame = gpd.GeoDataFrame({"name": list(shapes)}, geometry=geoms, crs=SAMPLE_CRS)
+        if kind is Polygon:
+            frame["geometry"] = frame.geometry.segmentize(10e3)
+        path = folder / name
+        path.unlink(missing_ok=True)
+        frame.to_crs("EPSG:4326").to_file(path, driver="GeoJSON")
 
 
 def demo_scenario(name: str = "plateau") -> Path:

@@ -43,6 +43,7 @@ _SCHEMA: dict[str, Any] = {
     "walls": {"upper_velocity": "vector:velocity"},
     "constants": {"gravity": "acceleration"},
     "output": {"variables": "list", "formats": "list"},
+    "budgets": {"sections": "path", "regions": "path"},
 }
 
 
@@ -137,6 +138,8 @@ class Scenario:
     formats: tuple[str, ...] = FORMATS
     source: Path | None = None
     written: dict = field(default_factory=dict, compare=False, repr=False)
+    sections: Path | None = None
+    regions: Path | None = None
 
     def resolved(self) -> dict:
         """The scenario resolved to SI units, as a JSON-ready dict."""
@@ -149,6 +152,10 @@ class Scenario:
                 "crs": self.crs,
             },
             "parameters_SI": asdict(self.parameters),
+            "budgets": {
+                "sections": str(self.sections) if self.sections else None,
+                "regions": str(self.regions) if self.regions else None,
+            },
             "output": {
                 "variables": list(self.variables) if self.variables else "all",
                 "formats": list(self.formats),
@@ -300,7 +307,12 @@ def scenario_from_dict(
     title = raw.get("title", source.stem if source else "crustflow scenario")
     if not isinstance(title, str):
         raise CrustflowInputError('title must be a string in quotes, e.g. title = "My plateau"')
+    budgets = raw.get("budgets", {})
+    sections = _path(budgets["sections"], "budgets.sections", base) if "sections" in budgets else None
+    regions = _path(budgets["regions"], "budgets.regions", base) if "regions" in budgets else None
     return Scenario(
+        sections=sections,
+        regions=regions,
         title=title,
         topography=_path(grids["topography"], "grids.topography", base),
         crust_thickness=(

@@ -36,6 +36,10 @@ HALO_ROWS = 2
 #: Default number of cells in one strip (sets peak memory: roughly 60 float64 arrays of this size).
 CELLS_PER_STRIP = 1 << 19
 
+#: Variables the volume budgets and arrow layers read.
+BUDGET_VARIABLES = ("flux_east", "flux_north", "flux_azimuth", "thickening_rate", "uplift_rate",
+                    "mean_velocity_east", "mean_velocity_north")
+
 #: Largest side, in cells, of the decimated copy kept for the figure.
 FIGURE_CELLS = 800
 
@@ -53,6 +57,7 @@ def run_strips(
     strip_rows: int | None = None,
     stage: Callable[[str], None] | None = None,
     progress: bool = False,
+    budget_fields: str | Path | None = None,
 ) -> dict:
     """Compute a scenario strip by strip and write its NetCDF and GeoTIFF outputs into ``folder``.
 
@@ -68,6 +73,10 @@ def run_strips(
         Called with a stage name as work starts.
     progress : bool
         Show a progress bar of rows done on stderr (for grids of more than a few strips).
+    budget_fields : path, optional
+        Also write the variables budgets need (:data:`BUDGET_VARIABLES`) into this NetCDF file,
+        unless ``fields.nc`` already holds them; the result's ``budget_fields`` names the file
+        to read them from.
 
     Returns
     -------
@@ -98,12 +107,15 @@ def run_strips(
         figure_vars = ["flux_magnitude", "flux_east", "flux_north"]
         make_figure = "figure" in scenario.formats
         wanted = set(names) | set(figure_vars if make_figure else [])
+        side = None
+        if budget_fields is not None:
+            wanted |= set(BUDGET_VARIABLES)
         # Summary lines for the terminal, from what is computed anyway (no extra work).
         summary = [n for n in ("flux_magnitude", "thickening_rate", "uplift_rate") if n in wanted]
         written = []
         nc = tifs = None
         if "netcdf" in scenario.formats:
-            attrs = netcdf_attrs(scenario.title, json.dumps(scenario.written))
+            attrs = netcdf_attrs(scenario.title, json.dumps(scenario.written), dict(vars(p)))
             nc = NetcdfWriter(
                 folder / "fields.nc",
                 x,
@@ -115,6 +127,15 @@ def run_strips(
             )
             writers.append(nc)
             written.append("fields.nc")
+        if budget_fields is not None:
+            if nc is not None and set(BUDGET_VARIABLES) <= set(names):
+                side_path = folder / "fields.nc"
+            else:
+                side_path = Path(budget_fields)
+                side = NetcdfWriter(side_path, x, y, topo.crs, t,
+                                    {n: variable_attrs(n) for n in BUDGET_VARIABLES},
+                                    netcdf_attrs(scenario.title, json.dumps(scenario.written), dict(vars(p))))
+                writers.append(side)
         if "geotiff" in scenario.formats:
             from .model import CAUTION
 
@@ -163,6 +184,8 @@ def run_strips(
             out = {n: to_practical(n, v[r0 - a : r1 - a]) for n, v in si.items()}
             if nc is not None:
                 nc.write_rows(r0, {n: out[n] for n in names})
+            if side is not None:
+                side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
             if tifs is not None:
                 for n in names:
                     tifs[n].write_rows(r0, out[n])
@@ -196,6 +219,7 @@ def run_strips(
             "backflow_cells": counts["backflow"] if "backflow" in wanted else None,
             "valid_cells": counts["valid"],
             "figure": figure,
+            "budget_fields": side_path if budget_fields is not None else None,
             "shape": [height, width],
             "strip_rows": rows,
         }

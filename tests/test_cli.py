@@ -226,3 +226,66 @@ def test_grids_with_shared_pixel_grid_but_no_crs_use_the_scenario_crs(tmp_path):
     )
     (tmp_path / "s.toml").write_text(text)
     assert main(["run", str(tmp_path / "s.toml"), "--out", str(tmp_path / "o"), "--quiet"]) == 0
+
+
+def test_demo_writes_budgets(demo_run):
+    import geopandas as gpd
+    import pandas as pd
+
+    table = pd.read_csv(demo_run / "budgets.csv")
+    assert set(table["kind"]) == {"section", "region"}
+    assert (table["covered_fraction"] > 0.99).all()
+    # 1 km^3/Myr = 1000 m^3/yr (unit definition)
+    assert np.allclose(table["volume_flux_km3_per_Myr"] * 1000, table["volume_flux_m3_per_yr"])
+    layers = gpd.list_layers(demo_run / "budgets.gpkg")["name"].tolist()
+    assert sorted(layers) == ["regions", "sections"]
+    assert sorted(gpd.list_layers(demo_run / "flux_arrows.gpkg")["name"]) == ["arrows", "samples"]
+    assert (demo_run / "budget_map.png").is_file()
+    assert (demo_run / "section_Varnessa_Scarp.png").is_file()
+
+
+def test_budget_command_reuses_run_and_matches(demo_run, tmp_path, capsys):
+    from crustflow.samples import demo_scenario
+
+    scenario = demo_scenario("plateau")
+    folder = scenario.parent
+    args = ["budget", str(scenario), "--sections", str(folder / "margins.geojson"),
+            "--regions", str(folder / "basins.geojson")]
+    # With the demo's run: its fields.nc is reused (no recomputation).
+    assert main(args + ["--run", str(demo_run), "--out", str(tmp_path / "b1")]) == 0
+    err = capsys.readouterr()
+    assert "reused" in err.err and "Varnessa Scarp" in err.out
+    # Without a run: the fields are computed; the numbers are the same.
+    assert main(args + ["--run", str(tmp_path / "none"), "--out", str(tmp_path / "b2")]) == 0
+    assert "computed the fields" in capsys.readouterr().err
+    import pandas as pd
+
+    a = pd.read_csv(tmp_path / "b1" / "budgets.csv")
+    b = pd.read_csv(tmp_path / "b2" / "budgets.csv")
+    np.testing.assert_allclose(a["volume_flux_m3_per_yr"], b["volume_flux_m3_per_yr"], rtol=1e-12)
+    assert not (tmp_path / "b2" / ".budget_fields.nc").exists()
+
+
+@pytest.mark.parametrize(
+    ("content", "message"),
+    [
+        ('{"type": "FeatureCollection", "features": []}', r"has no features"),
+        ('{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": '
+         '"urn:ogc:def:crs:EPSG::32633"}}, "features": [{"type": "Feature", "properties": {}, '
+         '"geometry": {"type": "Point", "coordinates": [400000, 5100000]}}]}', r"Point"),
+        ('{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": '
+         '"urn:ogc:def:crs:EPSG::32633"}}, "features": [{"type": "Feature", "properties": {}, '
+         '"geometry": {"type": "LineString", "coordinates": [[900000, 100000], [910000, 100000]]}}]}',
+         r"outside the grid"),
+    ],
+)
+def test_bad_sections_exit_2(scenario_dir, capsys, content, message):
+    import re
+
+    (scenario_dir / "lines.geojson").write_text(content)
+    out = scenario_dir / "out"
+    code = main(["budget", str(scenario_dir / "scenario.toml"), "--sections",
+                 str(scenario_dir / "lines.geojson"), "--out", str(out)])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1 and re.search(message, err), err
+    assert not out.exists()
