@@ -45,7 +45,7 @@ def _pyplot():
 
 
 def _caution(fig, text: str) -> None:
-    from .model import CAUTION
+    from .fields import CAUTION
 
     fig.get_layout_engine().set(rect=(0.0, FOOT_SHARE, 1.0, 1.0 - FOOT_SHARE))
     fig.text(0.01, 0.005, f"{text} {CAUTION}", fontsize=6, ha="left", va="bottom", wrap=True)

@@ -150,7 +150,7 @@ def _print_table(table) -> None:
 
 
 def _summary(result: dict) -> None:
-    from .model import VARIABLES
+    from .fields import VARIABLES
 
     labels = {"flux_magnitude": "flux magnitude", "thickening_rate": "thickening rate",
               "uplift_rate": "uplift rate"}
@@ -163,8 +163,8 @@ def _summary(result: dict) -> None:
 
 
 def _check(scenario_path: Path) -> int:
+    from .fields import ThinCrustCheck, crust_thickness_of
     from .grids import GridChecks, close_sources, open_sources
-    from .model import ThinCrustCheck, crust_thickness_of
     from .scenario import load_scenario
     from .stream import strip_rows_for
 

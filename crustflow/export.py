@@ -17,12 +17,14 @@ from contextlib import contextmanager
 from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import rioxarray  # noqa: F401  (registers the .rio accessor)
-import xarray as xr
 
 from .errors import CrustflowInputError
+
+if TYPE_CHECKING:
+    import xarray as xr
 
 __all__ = [
     "write_netcdf",
@@ -79,13 +81,23 @@ def _file_variables(ds: xr.Dataset, variables) -> list[str]:
 
 
 def _cf_layout(x: np.ndarray, y: np.ndarray, crs, transform) -> tuple[dict, dict, dict]:
-    """CF attributes of x, y and the ``spatial_ref`` grid mapping, as rioxarray writes them."""
+    """CF attributes of x, y and the ``spatial_ref`` grid mapping (CF-1.8 through pyproj).
 
-    head = xr.Dataset(coords={"y": y[:2], "x": x[:2]})
-    head = head.rio.write_crs(crs).rio.write_coordinate_system()
-    mapping = dict(head.spatial_ref.attrs)
+    The grid mapping carries ``crs_wkt`` (CF) and ``spatial_ref`` and ``GeoTransform`` (read by GDAL),
+    as rioxarray writes them.
+    """
+    import pyproj
+
+    crs = pyproj.CRS.from_user_input(crs)
+    mapping = dict(crs.to_cf())
+    mapping["spatial_ref"] = crs.to_wkt()
     mapping["GeoTransform"] = " ".join(str(v) for v in transform.to_gdal())
-    return dict(head.x.attrs), dict(head.y.attrs), mapping
+    axes = {axis.get("axis"): axis for axis in crs.cs_to_cf()}
+    x_attrs = dict(axes.get("X", {}))
+    y_attrs = dict(axes.get("Y", {}))
+    if crs.is_projected:  # metre grids: CF and UDUNITS spell the unit "m"
+        x_attrs["units"] = y_attrs["units"] = "m"
+    return x_attrs, y_attrs, mapping
 
 
 class NetcdfWriter:
@@ -220,7 +232,7 @@ class GeotiffWriter:
 def netcdf_attrs(title: str, scenario_text: str = "", parameters: dict | None = None) -> dict:
     """Global attributes of ``fields.nc``."""
     from . import __version__
-    from .model import CAUTION
+    from .fields import CAUTION
 
     return {
         "Conventions": "CF-1.8",

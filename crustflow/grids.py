@@ -10,11 +10,14 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import xarray as xr
 
 from .errors import CrustflowInputError
+
+if TYPE_CHECKING:
+    import xarray as xr
 
 __all__ = [
     "InputGrids",
@@ -306,6 +309,7 @@ def provenance(sources: dict[str, GridSource]) -> dict:
 def as_dataarray(values: np.ndarray, source: GridSource, name: str) -> xr.DataArray:
     """Wrap rows read from ``source`` (whole grid) as a DataArray with coordinates and CRS."""
     import rioxarray  # noqa: F401  (registers the .rio accessor)
+    import xarray as xr
 
     x, y = source.coords()
     da = xr.DataArray(values, dims=("y", "x"), coords={"y": y, "x": x}, name=name)

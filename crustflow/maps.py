@@ -695,11 +695,20 @@ def _axis_derivative(f: np.ndarray, axis: int, step: float) -> np.ndarray:
 
 def _face_values(q: np.ndarray, axis: int) -> np.ndarray:
     """Values on the n + 1 faces along ``axis``: mean of valid neighbours, else the valid one."""
-    pad = [(0, 0), (0, 0)]
-    pad[axis] = (1, 1)
-    padded = np.pad(q, pad, constant_values=np.nan)
-    n = q.shape[axis]
-    left = np.take(padded, np.arange(0, n + 1), axis=axis)
-    right = np.take(padded, np.arange(1, n + 2), axis=axis)
-    ok_left, ok_right = ~np.isnan(left), ~np.isnan(right)
-    return np.where(ok_left & ok_right, 0.5 * (left + right), np.where(ok_left, left, right))
+
+    def part(sl) -> tuple:
+        return (sl, slice(None)) if axis == 0 else (slice(None), sl)
+
+    shape = list(q.shape)
+    shape[axis] += 1
+    out = np.empty(shape, dtype=q.dtype)
+    left, right = q[part(slice(None, -1))], q[part(slice(1, None))]
+    inner = out[part(slice(1, -1))]
+    np.add(left, right, out=inner)
+    inner *= 0.5
+    lone = np.isnan(inner)
+    if lone.any():  # next to nodata: the valid neighbour's own value (NaN if neither is valid)
+        np.copyto(inner, np.where(np.isnan(left), right, left), where=lone)
+    out[part(slice(0, 1))] = q[part(slice(0, 1))]
+    out[part(slice(-1, None))] = q[part(slice(-1, None))]
+    return out

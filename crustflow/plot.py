@@ -49,7 +49,7 @@ def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi:
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
 
-    from .model import CAUTION
+    from .fields import CAUTION
 
     crs = ds.rio.crs
     geographic = bool(crs is not None and crs.is_geographic)

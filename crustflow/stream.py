@@ -17,9 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .grids import GridChecks, close_sources, open_sources, provenance
-from .maps import grid_geometry
-from .model import (
+from .fields import (
     VARIABLES,
     ThinCrustCheck,
     crust_thickness_of,
@@ -27,14 +25,19 @@ from .model import (
     to_practical,
     variable_attrs,
 )
+from .grids import GridChecks, close_sources, open_sources, provenance
+from .maps import grid_geometry
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
 
 #: Halo rows on each inner side of a strip: 1 for the gradient of the load, 1 for the divergence.
 HALO_ROWS = 2
 
-#: Default number of cells in one strip (sets peak memory: roughly 60 float64 arrays of this size).
+#: Default number of cells in one strip (sets peak memory: roughly 40 float64 arrays of this size).
 CELLS_PER_STRIP = 1 << 19
+
+#: Rows of one output GeoTIFF tile (crustflow.export.GeotiffWriter writes 256 x 256 tiles).
+TILE_ROWS = 256
 
 #: Variables the volume budgets and arrow layers read.
 BUDGET_VARIABLES = ("flux_east", "flux_north", "flux_azimuth", "thickening_rate", "uplift_rate",
@@ -45,9 +48,17 @@ FIGURE_CELLS = 800
 
 
 def strip_rows_for(width: int, cells: int = CELLS_PER_STRIP) -> int:
-    """Rows per strip for a grid ``width`` cells wide (a multiple of 256 when possible)."""
+    """Rows per strip for a grid ``width`` cells wide: a multiple of the 256-row output tiles when
+    that keeps a strip near ``cells`` cells, else a power of two (a tile fills over several strips)."""
     rows = max(1, cells // max(width, 1))
-    return rows if rows < 256 else (rows // 256) * 256
+    if rows >= TILE_ROWS:
+        return (rows // TILE_ROWS) * TILE_ROWS
+    return 1 << (rows.bit_length() - 1)  # a power of two divides the tile: tiles fill exactly
+
+
+def _gdal_cache_bytes(variables: int, width: int) -> int:
+    """GDAL block cache big enough to hold one row of output tiles of every file, and 64 MB."""
+    return max(64 << 20, int(1.5 * variables * width * TILE_ROWS * 4))
 
 
 def run_strips(
@@ -90,13 +101,35 @@ def run_strips(
     CrustflowInputError
         Every check of :func:`crustflow.solve`; nothing in ``folder`` is then complete.
     """
-    from .export import GeotiffWriter, NetcdfWriter, netcdf_attrs
-
     note = stage or (lambda name: None)
     folder = Path(folder)
     note("open grids")
+    import rasterio
+
+    names = list(scenario.variables or VARIABLES)
+    cache = _gdal_cache_bytes(len(names) + len(BUDGET_VARIABLES), _width_of(scenario))
+    with rasterio.Env(GDAL_CACHEMAX=cache):
+        return _run_strips(scenario, folder, strip_rows=strip_rows, note=note, progress=progress,
+                           budget_fields=budget_fields)
+
+
+def _width_of(scenario) -> int:
+    """Width of the topography grid (a guess if it cannot be read: open_sources reports why)."""
+    import rasterio
+
+    try:
+        with rasterio.open(scenario.topography) as src:
+            return src.width
+    except (rasterio.errors.RasterioError, OSError):
+        return 4096
+
+
+def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fields) -> dict:
+    from .export import GeotiffWriter, NetcdfWriter, netcdf_attrs
+
     sources = open_sources(scenario)
     writers: list = []
+    writer = None
     try:
         topo = sources["topography"]
         p = scenario.parameters
@@ -137,7 +170,7 @@ def run_strips(
                                     netcdf_attrs(scenario.title, json.dumps(scenario.written), dict(vars(p))))
                 writers.append(side)
         if "geotiff" in scenario.formats:
-            from .model import CAUTION
+            from .fields import CAUTION
 
             tifs = {}
             for n in names:
@@ -161,6 +194,16 @@ def run_strips(
         note("compute and write")
         from tqdm import tqdm
 
+        def write(r0: int, out: dict) -> None:
+            if nc is not None:
+                nc.write_rows(r0, {n: out[n] for n in names})
+            if side is not None:
+                side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
+            if tifs is not None:
+                for n in names:
+                    tifs[n].write_rows(r0, out[n])
+
+        writer = _BackgroundWriter(write)
         bar = tqdm(total=height, unit=" rows", desc="crustflow", leave=False, file=sys.stderr,
                    disable=not progress or height <= rows, dynamic_ncols=True)
         for r0 in range(0, height, rows):
@@ -182,13 +225,7 @@ def run_strips(
             geom = grid_geometry(x, y[a:b], topo.crs, spacing=(t.a, t.e))
             si = fields_si(H, T, geom, p, wanted=wanted)
             out = {n: to_practical(n, v[r0 - a : r1 - a]) for n, v in si.items()}
-            if nc is not None:
-                nc.write_rows(r0, {n: out[n] for n in names})
-            if side is not None:
-                side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
-            if tifs is not None:
-                for n in names:
-                    tifs[n].write_rows(r0, out[n])
+            writer.put(r0, out)
             for n in summary:
                 v = out[n][np.isfinite(out[n])]
                 if v.size:
@@ -204,6 +241,7 @@ def run_strips(
                 for n in figure_vars:
                     fig_rows[n].append(out[n][first::step, step // 2 :: step])
         bar.close()
+        writer.finish()
         checks.finish()  # on early exit these stats are partial: enough to name the likely cause
         thin.finish()
         for w in writers:
@@ -224,9 +262,52 @@ def run_strips(
             "strip_rows": rows,
         }
     finally:
+        if writer is not None:
+            writer.finish(raise_errors=False)
         for w in writers:
             w.close()
         close_sources(sources)
+
+
+class _BackgroundWriter:
+    """Writes strips in a second thread while the next strip is computed (GDAL, HDF5 and numpy
+    release the GIL). One strip waits in the queue at most, so memory stays bounded; files are
+    touched by the writer thread only, in order."""
+
+    def __init__(self, write: Callable[[int, dict], None]) -> None:
+        import queue
+        import threading
+
+        self._write = write
+        self._queue: queue.Queue = queue.Queue(maxsize=1)
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._loop, name="crustflow-writer", daemon=True)
+        self._thread.start()
+
+    def _loop(self) -> None:
+        while True:
+            item = self._queue.get()
+            if item is None:
+                return
+            if self._error is None:
+                try:
+                    self._write(*item)
+                except BaseException as exc:  # noqa: BLE001 - handed to the main thread
+                    self._error = exc
+
+    def put(self, row0: int, arrays: dict) -> None:
+        """Queue a strip (blocks while the previous one is still being written)."""
+        if self._error is not None:
+            raise self._error
+        self._queue.put((row0, arrays))
+
+    def finish(self, raise_errors: bool = True) -> None:
+        """Wait for every queued strip; raise the writer's error, if any."""
+        if self._thread.is_alive():
+            self._queue.put(None)
+            self._thread.join()
+        if raise_errors and self._error is not None:
+            raise self._error
 
 
 def _figure_dataset(rows: dict, x, y, step: int, crs, title: str):

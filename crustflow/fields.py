@@ -1,0 +1,241 @@
+"""Output variables and the physics of one block of rows, free of xarray and files.
+
+:data:`VARIABLES` is the single table of output names, long names and practical units. :func:`fields_si`
+assembles load, channel and divergence for a whole grid or a strip of rows; both
+:func:`crustflow.compute_fields` (the API, whole grids) and :mod:`crustflow.stream` (the command,
+strips) call it, so they agree bit for bit.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import load
+from .channel import channel_flow, channel_flux
+from .constants import SECONDS_PER_YEAR
+from .errors import CrustflowInputError
+from .maps import azimuth, divergence
+from .scenario import ModelParameters
+
+__all__ = ["Variable", "VARIABLES", "CAUTION", "fields_si", "to_practical", "variable_attrs",
+           "crust_thickness_of", "ThinCrustCheck"]
+
+
+@dataclass(frozen=True)
+class Variable:
+    """An output variable: CF metadata and the factor from SI to its practical unit."""
+
+    long_name: str
+    units: str  #: UDUNITS form, as written to files
+    factor: float  #: value in ``units`` = value in SI x factor
+    flag: bool = False  #: 0/1 flag variable
+    standard_name: str | None = None
+
+
+_MM_YR = 1e3 * SECONDS_PER_YEAR
+_M2_YR = SECONDS_PER_YEAR
+
+#: Every variable crustflow writes, in output order. Rates use the Julian year (365.25 d).
+VARIABLES: dict[str, Variable] = {
+    "crust_thickness": Variable("crustal thickness, surface to Moho", "km", 1e-3),
+    "channel_top_depth": Variable("depth of the channel top below sea level", "km", 1e-3),
+    "overburden_pressure": Variable("lithostatic pressure at the channel top", "MPa", 1e-6),
+    "drive_east": Variable(
+        "horizontal pressure gradient in the channel, east component", "Pa m-1", 1.0
+    ),
+    "drive_north": Variable(
+        "horizontal pressure gradient in the channel, north component", "Pa m-1", 1.0
+    ),
+    "flux_east": Variable("channel volume flux per unit width, east component", "m2 yr-1", _M2_YR),
+    "flux_north": Variable(
+        "channel volume flux per unit width, north component", "m2 yr-1", _M2_YR
+    ),
+    "flux_magnitude": Variable("channel volume flux per unit width, magnitude", "m2 yr-1", _M2_YR),
+    "flux_azimuth": Variable("direction of channel flux, clockwise from true north", "degree", 1.0),
+    "mean_velocity_east": Variable("channel mean velocity, east component", "mm yr-1", _MM_YR),
+    "mean_velocity_north": Variable("channel mean velocity, north component", "mm yr-1", _MM_YR),
+    "peak_speed": Variable("largest speed within the channel", "mm yr-1", _MM_YR),
+    "peak_speed_height": Variable("height of the largest speed above the channel base", "km", 1e-3),
+    "upper_wall_drag_east": Variable(
+        "shear traction of the channel on its upper wall, east", "MPa", 1e-6
+    ),
+    "upper_wall_drag_north": Variable(
+        "shear traction of the channel on its upper wall, north", "MPa", 1e-6
+    ),
+    "lower_wall_drag_east": Variable(
+        "shear traction of the channel on its lower wall, east", "MPa", 1e-6
+    ),
+    "lower_wall_drag_north": Variable(
+        "shear traction of the channel on its lower wall, north", "MPa", 1e-6
+    ),
+    "backflow": Variable(
+        "flow reversal: some height in the channel moves against the net flux", "1", 1.0, flag=True
+    ),
+    "wall_driven_share": Variable(
+        "share of the flux carried by wall motion, |q_wall| / (|q_wall| + |q_pressure|)", "1", 1.0
+    ),
+    "thickening_rate": Variable("crustal thickening rate, -div(q)", "mm yr-1", _MM_YR),
+    "uplift_rate": Variable("isostatic surface uplift rate from thickening", "mm yr-1", _MM_YR),
+}
+
+
+#: One-line caution carried by every output.
+CAUTION = (
+    "Research estimate of a simplified model (thin channel, rigid walls, lithostatic load, "
+    "Newtonian); no basis for hazard or engineering decisions without local, licensed review."
+)
+
+
+#: Variables that need the full one-cell solution, not just the flux.
+_CELL_EXTRAS = {
+    "mean_velocity_east", "mean_velocity_north", "peak_speed", "peak_speed_height",
+    "upper_wall_drag_east", "upper_wall_drag_north", "lower_wall_drag_east",
+    "lower_wall_drag_north", "backflow", "wall_driven_share",
+}
+
+
+def crust_thickness_of(
+    elevation, parameters: ModelParameters, *, crust_thickness=None, moho_depth=None
+):
+    """Crustal thickness T (m) from whichever input the run has: T itself, Moho depth, or Airy."""
+    p = parameters
+    if crust_thickness is not None:
+        return crust_thickness
+    if moho_depth is not None:
+        return load.crust_thickness_from_moho(elevation, moho_depth)
+    if p.reference_thickness is None:
+        raise CrustflowInputError(
+            "no crust_thickness or moho_depth grid and no "
+            "reference_thickness for Airy isostasy; give one of them"
+        )
+    return load.crust_thickness_airy(
+        elevation, p.reference_thickness, p.rho_crust, p.rho_mantle, p.rho_water
+    )
+
+
+class ThinCrustCheck:
+    """Counts cells where the channel is not thinner than the crust; :meth:`finish` raises."""
+
+    def __init__(self, channel_thickness: float) -> None:
+        self.h, self.cells, self.thinnest = channel_thickness, 0, np.inf
+
+    def update(self, crust_thickness: np.ndarray) -> None:
+        """Add a strip of crustal thickness values, m."""
+        bad = np.isfinite(crust_thickness) & (crust_thickness <= self.h)
+        self.cells += int(bad.sum())
+        finite = crust_thickness[np.isfinite(crust_thickness)]
+        if finite.size:
+            self.thinnest = min(self.thinnest, float(finite.min()))
+
+    def finish(self) -> None:
+        """Raise :class:`CrustflowInputError` if any cell failed."""
+        if self.cells:
+            raise CrustflowInputError(
+                f"channel.thickness ({self.h / 1e3:g} km) is not less than the crustal thickness in "
+                f"{self.cells} cells (thinnest crust {self.thinnest / 1e3:.3g} km); give a thinner "
+                "channel or check the thickness grid"
+            )
+
+
+def fields_si(
+    elevation: np.ndarray,
+    crust_thickness: np.ndarray,
+    geometry,
+    parameters: ModelParameters,
+    *,
+    wanted=None,
+) -> dict[str, np.ndarray]:
+    """Every output variable in SI units on one block of rows (numpy arrays).
+
+    Parameters
+    ----------
+    elevation, crust_thickness : ndarray
+        H and T, m, NaN for nodata, on ``geometry``'s cells (a whole grid, or a strip of rows with
+        two halo rows on each inner side).
+    geometry : crustflow.maps.GridGeometry
+    parameters : ModelParameters
+    wanted : set of str, optional
+        Variables to compute (default: all of :data:`VARIABLES`); others are left out.
+
+    Returns
+    -------
+    dict
+        Name -> array in SI (m, Pa, Pa/m, m^2/s, m/s, degrees, 1), NaN where the cell depends on
+        nodata.
+    """
+    p = parameters
+    wanted = set(VARIABLES) if wanted is None else set(wanted)
+    valid = np.isfinite(elevation) & np.isfinite(crust_thickness)
+    H = np.where(valid, elevation, np.nan)
+    T = np.where(valid, crust_thickness, np.nan)
+    h = p.channel_thickness
+    z_top = load.channel_top_depth(H, T, h)
+    p_top = load.overburden_pressure(
+        H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water, gravity=p.gravity
+    )
+    g_east, g_north = load.driving_gradient(
+        p_top, z_top, geometry, rho_channel=p.rho_channel, gravity=p.gravity
+    )
+    live = valid & np.isfinite(g_east) & np.isfinite(g_north)
+    out = {
+        "crust_thickness": T,
+        "channel_top_depth": z_top,
+        "overburden_pressure": p_top,
+        "drive_east": g_east,
+        "drive_north": g_north,
+    }
+    if wanted & _CELL_EXTRAS:
+        sol = channel_flow(
+            g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
+        )
+        out.update(sol.as_dict())
+    else:  # only the flux is needed: skip peak speed, drag and backflow
+        out["flux_east"], out["flux_north"] = channel_flux(
+            g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
+        )
+    q_east, q_north = out["flux_east"], out["flux_north"]
+    if wanted & {"thickening_rate", "uplift_rate"}:
+        thickening = -divergence(q_east, q_north, geometry)
+        out["thickening_rate"] = thickening
+        out["uplift_rate"] = load.uplift_rate(
+            thickening, H, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle, rho_water=p.rho_water
+        )
+    if "flux_magnitude" in wanted:
+        out["flux_magnitude"] = np.hypot(q_east, q_north)
+    if "flux_azimuth" in wanted:
+        out["flux_azimuth"] = azimuth(q_east, q_north, geometry)
+    result = {}
+    for name in VARIABLES:
+        if name not in wanted:
+            continue
+        values = np.asarray(out[name])
+        if VARIABLES[name].flag:
+            values = values.astype("float64")
+        mask = (
+            valid
+            if name in ("crust_thickness", "channel_top_depth", "overburden_pressure")
+            else live
+        )
+        result[name] = np.where(mask, values, np.nan)
+    return result
+
+
+def to_practical(name: str, values: np.ndarray) -> np.ndarray:
+    """Convert a variable from SI to the practical unit of :data:`VARIABLES`."""
+    factor = VARIABLES[name].factor
+    return values if factor == 1.0 else values * factor
+
+
+def variable_attrs(name: str) -> dict:
+    """CF attributes of a variable (``long_name``, ``units``, flag attributes)."""
+    var = VARIABLES[name]
+    attrs = {"long_name": var.long_name, "units": var.units}
+    if var.flag:
+        attrs.update(
+            flag_values=np.array([0, 1], dtype="int8"), flag_meanings="no_backflow backflow"
+        )
+    return attrs
+
+
