@@ -115,9 +115,12 @@ class NetcdfWriter:
         Name -> attributes (``long_name``, ``units``, optional ``flag_values``/``flag_meanings``).
     attrs : dict
         Global attributes.
+    chunk_rows : int
+        Rows written at a time; the NetCDF chunks are this tall (16 to 256 rows).
     """
 
-    def __init__(self, path, x, y, crs, transform, variables: dict, attrs: dict) -> None:
+    def __init__(self, path, x, y, crs, transform, variables: dict, attrs: dict,
+                 chunk_rows: int = 256) -> None:
         import netCDF4
 
         self.nc = netCDF4.Dataset(path, "w", format="NETCDF4")
@@ -132,7 +135,10 @@ class NetcdfWriter:
             var.setncatts(cattrs)
         ref = nc.createVariable("spatial_ref", "i4")
         ref.setncatts(mapping)
-        chunks = (min(256, len(y)), min(256, len(x)))
+        # Chunks as tall as the strips written (so each write completes its chunks), at most 256.
+        chunks = (min(max(chunk_rows, 16), 256, len(y)), min(256, len(x)))
+        # Chunk cache: one row of chunks, twice over (partly written chunks wait there).
+        cache = 2 * (len(x) // chunks[1] + 1) * chunks[0] * chunks[1] * 4
         self.flags = set()
         for name, vattrs in variables.items():
             flag = "flag_values" in vattrs
@@ -158,6 +164,7 @@ class NetcdfWriter:
                     fill_value=np.float32(np.nan),
                 )
             var.set_auto_maskandscale(False)
+            var.set_var_chunk_cache(size=cache, nelems=4 * (len(x) // chunks[1] + 1), preemption=0.9)
             var.setncatts({k: v for k, v in vattrs.items() if k != "caution"})
             var.grid_mapping = "spatial_ref"
 

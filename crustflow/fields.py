@@ -89,7 +89,7 @@ CAUTION = (
 
 
 #: Variables that need the full one-cell solution, not just the flux.
-_CELL_EXTRAS = {
+CELL_EXTRAS = {
     "mean_velocity_east", "mean_velocity_north", "peak_speed", "peak_speed_height",
     "upper_wall_drag_east", "upper_wall_drag_north", "lower_wall_drag_east",
     "lower_wall_drag_north", "backflow", "wall_driven_share",
@@ -186,7 +186,7 @@ def fields_si(
         "drive_east": g_east,
         "drive_north": g_north,
     }
-    if wanted & _CELL_EXTRAS:
+    if wanted & CELL_EXTRAS:
         sol = channel_flow(
             g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
         )

@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from .fields import (
+    CELL_EXTRAS,
     VARIABLES,
     ThinCrustCheck,
     crust_thickness_of,
@@ -33,7 +34,9 @@ __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
 #: Halo rows on each inner side of a strip: 1 for the gradient of the load, 1 for the divergence.
 HALO_ROWS = 2
 
-#: Default number of cells in one strip (sets peak memory: roughly 40 float64 arrays of this size).
+#: Cells in one strip when only the load, flux and its divergence are computed (peak memory is
+#: roughly 40 float64 arrays of this size); the full one-cell solution (peak speed, drag,
+#: backflow) takes about four times as many arrays, so it gets a quarter of this.
 CELLS_PER_STRIP = 1 << 19
 
 #: Rows of one output GeoTIFF tile (crustflow.export.GeotiffWriter writes 256 x 256 tiles).
@@ -143,6 +146,8 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         side = None
         if budget_fields is not None:
             wanted |= set(BUDGET_VARIABLES)
+        full = bool(wanted & CELL_EXTRAS)
+        rows = strip_rows or strip_rows_for(width, CELLS_PER_STRIP // (4 if full else 1))
         # Summary lines for the terminal, from what is computed anyway (no extra work).
         summary = [n for n in ("flux_magnitude", "thickening_rate", "uplift_rate") if n in wanted]
         written = []
@@ -157,6 +162,7 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
                 t,
                 {n: variable_attrs(n) for n in names},
                 attrs,
+                chunk_rows=rows,
             )
             writers.append(nc)
             written.append("fields.nc")
@@ -167,7 +173,8 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
                 side_path = Path(budget_fields)
                 side = NetcdfWriter(side_path, x, y, topo.crs, t,
                                     {n: variable_attrs(n) for n in BUDGET_VARIABLES},
-                                    netcdf_attrs(scenario.title, json.dumps(scenario.written), dict(vars(p))))
+                                    netcdf_attrs(scenario.title, json.dumps(scenario.written), dict(vars(p))),
+                                    chunk_rows=rows)
                 writers.append(side)
         if "geotiff" in scenario.formats:
             from .fields import CAUTION
@@ -190,7 +197,6 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         counts = {"backflow": 0, "valid": 0}
         checks = GridChecks(sources)
         thin = ThinCrustCheck(p.channel_thickness)
-        rows = strip_rows or strip_rows_for(width)
         note("compute and write")
         from tqdm import tqdm
 
