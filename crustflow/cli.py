@@ -356,13 +356,20 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``crustflow`` command; returns the exit status."""
+    with warnings.catch_warnings():
+        # NaN arithmetic on nodata is expected; library deprecation notices are not the user's to act on.
+        warnings.simplefilter("ignore", RuntimeWarning)
+        warnings.simplefilter("ignore", DeprecationWarning)
+        warnings.simplefilter("ignore", PendingDeprecationWarning)
+        return _main(argv)
+
+
+def _main(argv: list[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:
         parser.print_help()
         return 2
-    warnings.simplefilter("ignore", RuntimeWarning)
-    warnings.formatwarning = lambda msg, cat, *a, **k: f"crustflow: warning: {msg}\n"
     try:
         if args.command == "run":
             if args.strip_rows is not None and args.strip_rows < 1:
