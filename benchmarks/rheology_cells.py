@@ -14,10 +14,11 @@ Cases (synthetic cells, invented for timing only; SI inside):
    the temperature across the channel: the split Gauss-Legendre path.
 
 Channels 10-30 km thick, drive 10-500 Pa/m in any direction, wall speed 5-20 mm/yr, wall
-temperatures 850-1150 K. Every case computes the full solution (flux, wall stresses, peak speed,
-backflow, wall-driven share; for the power law also the effective viscosity and the convergence
-mask). The process is pinned to one core and BLAS to one thread. Nothing here asserts on timing:
-the targets are reported, not enforced. Prints a table; it writes nothing.
+temperatures 850-1150 K. The Newtonian case computes flux and lower-wall stress (all that
+``flux_from_moments`` gives); the power-law cases the full solution (flux, mean velocity, wall
+drags, peak speed and height, backflow, wall-driven share, effective viscosity, convergence
+mask). The process is pinned to one core and BLAS to one thread. Nothing here asserts on
+timing: the targets are reported, not enforced. Prints a table; it writes nothing.
 """
 
 from __future__ import annotations

@@ -23,6 +23,10 @@ __all__ = [
     "solve",
     "channel_flow",
     "velocity_profile",
+    "budget_table",
+    "section_budgets",
+    "region_budgets",
+    "samples",
 ]
 
 
@@ -32,6 +36,14 @@ def __getattr__(name: str):
         from . import model
 
         return getattr(model, name)
+    if name in ("budget_table", "section_budgets", "region_budgets"):
+        from . import budgets
+
+        return getattr(budgets, name)
+    if name == "samples":
+        from . import samples
+
+        return samples
     if name in ("channel_flow", "velocity_profile"):
         from . import channel
 

@@ -32,7 +32,7 @@ References
    103(B1), 975-984.
 .. [4] Ranalli, G. (1995). *Rheology of the Earth*, 2nd ed., Chapman & Hall, table 10.3.
 .. [5] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., Cambridge University Press,
-   section 4-8.
+   section 4-8 (continental geotherms; section number from memory).
 .. [6] Tiesinga, E., Mohr, P. J., Newell, D. B. & Taylor, B. N. (2021). CODATA recommended values
    of the fundamental physical constants: 2018. *Reviews of Modern Physics* 93, 025010.
 """
@@ -64,7 +64,8 @@ __all__ = [
     "temperature_profile",
 ]
 
-#: Molar gas constant R, J/(mol K). CODATA 2018 [6]_: exact since the 2019 SI (R = N_A k), here to 15 digits.
+#: Molar gas constant R, J/(mol K): CODATA 2018 (Tiesinga et al. 2021, Rev. Mod. Phys. 93, 025010),
+#: exact since the 2019 SI (R = N_A k), given here to 15 significant digits.
 GAS_CONSTANT = 8.31446261815324
 
 #: Highest temperature accepted anywhere in this module, K. A sanity limit, no source: hotter than
@@ -107,6 +108,16 @@ class FlowLaw:
     CrustflowInputError
         If the exponent is below 1, the prefactor is not positive, the energy or volume negative,
         or a units or ``read_from`` string unknown.
+
+    Notes
+    -----
+    ``sigma`` is the differential stress of the axial test and ``edot_axial`` its strain rate;
+    :func:`simple_shear_prefactor` converts the law to the channel's simple shear. Presets are in
+    :data:`FLOW_LAWS`, each with its source ([1]_ compiles many such laws).
+
+    References
+    ----------
+    .. [1] Ranalli, G. (1995). *Rheology of the Earth*, 2nd ed., Chapman & Hall, chapter 10.
     """
 
     name: str
@@ -153,65 +164,56 @@ class FlowLaw:
         return self.axial_prefactor * pascals ** (-self.stress_exponent)
 
 
-def _law(
-    name, prefactor, n, energy_kj, reference, read_from, notes, units="MPa^-n s^-1"
-) -> FlowLaw:
-    return FlowLaw(
-        name=name,
-        axial_prefactor=prefactor,
-        axial_prefactor_units=units,
-        stress_exponent=n,
-        activation_energy=energy_kj * 1e3,
-        reference=reference,
-        read_from=read_from,
-        notes=notes,
-    )
-
-
-#: Flow-law presets by name (values of SCIENCE.md; units of each as published, MPa^-n s^-1).
+#: Flow-law presets by name: the values of SCIENCE.md, prefactors in the units published
+#: (MPa^-n s^-1), activation energies in J/mol; no activation volumes (0).
 FLOW_LAWS = MappingProxyType(
     {
         law.name: law
         for law in (
-            _law(
-                "wet-quartzite",
-                1.1e-4,
-                4.0,
-                223.0,
-                "Gleason, G. C. & Tullis, J. (1995). Tectonophysics 247, 1-23",
-                "secondary table",
-                "Dislocation creep of quartz aggregates with added water, no water-fugacity "
-                "term. Values as tabulated in compilations (SCIENCE.md: 'as tabulated; "
-                "confirm'); not checked against the paper's own table.",
+            FlowLaw(
+                name="wet-quartzite",
+                axial_prefactor=1.1e-4,
+                axial_prefactor_units="MPa^-n s^-1",
+                stress_exponent=4.0,
+                activation_energy=223e3,
+                reference="Gleason, G. C. & Tullis, J. (1995). Tectonophysics 247, 1-23",
+                read_from="secondary table",
+                notes="Dislocation creep of quartz aggregates (molten-salt cell), fitted without "
+                "a water-fugacity term. Values as tabulated in compilations (SCIENCE.md: 'as "
+                "tabulated; confirm'), not checked against the paper's own table.",
             ),
-            _law(
-                "wet-anorthite",
-                10.0**2.6,
-                3.0,
-                356.0,
-                "Rybacki, E. & Dresen, G. (2000). JGR 105(B11), 26017-26036",
-                "original",
-                "Dislocation creep of wet synthetic anorthite aggregates. Values as SCIENCE.md "
-                "gives them, citing the paper; no activation volume included.",
+            FlowLaw(
+                name="wet-anorthite",
+                axial_prefactor=10.0**2.6,
+                axial_prefactor_units="MPa^-n s^-1",
+                stress_exponent=3.0,
+                activation_energy=356e3,
+                reference="Rybacki, E. & Dresen, G. (2000). JGR 105(B11), 26017-26036",
+                read_from="original",
+                notes="Dislocation creep of wet synthetic anorthite aggregates. Values as "
+                "SCIENCE.md gives them, citing the paper.",
             ),
-            _law(
-                "dry-diabase",
-                8.0,
-                4.7,
-                485.0,
-                "Mackwell, S. J., Zimmerman, M. E. & Kohlstedt, D. L. (1998). JGR 103(B1), 975-984",
-                "original",
-                "Dry Maryland diabase. Values as SCIENCE.md gives them, citing the paper.",
+            FlowLaw(
+                name="dry-diabase",
+                axial_prefactor=8.0,
+                axial_prefactor_units="MPa^-n s^-1",
+                stress_exponent=4.7,
+                activation_energy=485e3,
+                reference="Mackwell, S. J., Zimmerman, M. E. & Kohlstedt, D. L. (1998). "
+                "JGR 103(B1), 975-984",
+                read_from="original",
+                notes="Dry Maryland diabase. Values as SCIENCE.md gives them, citing the paper.",
             ),
-            _law(
-                "felsic-granulite",
-                8.0e-3,
-                3.1,
-                243.0,
-                "Ranalli, G. (1995). Rheology of the Earth, 2nd ed., table 10.3",
-                "secondary table",
-                "Ranalli's table compiles laboratory data (from memory: Wilks & Carter 1990, "
-                "Pikwitonei granulite); values as the table gives them.",
+            FlowLaw(
+                name="felsic-granulite",
+                axial_prefactor=8.0e-3,
+                axial_prefactor_units="MPa^-n s^-1",
+                stress_exponent=3.1,
+                activation_energy=243e3,
+                reference="Ranalli, G. (1995). Rheology of the Earth, 2nd ed., table 10.3",
+                read_from="secondary table",
+                notes="Ranalli's table compiles laboratory data (from memory: Wilks & Carter "
+                "1990, Pikwitonei granulite); values as the table gives them.",
             ),
         )
     }
@@ -243,7 +245,10 @@ def flow_law(name: str) -> FlowLaw:
 
     References
     ----------
-    .. [1] Ranalli, G. (1995). *Rheology of the Earth*, 2nd ed., table 10.3.
+    .. [1] Gleason, G. C. & Tullis, J. (1995). *Tectonophysics* 247, 1-23.
+    .. [2] Rybacki, E. & Dresen, G. (2000). *JGR* 105(B11), 26017-26036.
+    .. [3] Mackwell, S. J., Zimmerman, M. E. & Kohlstedt, D. L. (1998). *JGR* 103(B1), 975-984.
+    .. [4] Ranalli, G. (1995). *Rheology of the Earth*, 2nd ed., Chapman & Hall, table 10.3.
     """
     key = str(name).strip().lower().replace("_", "-").replace(" ", "-")
     if key in FLOW_LAWS:
@@ -548,7 +553,8 @@ def linear_temperature_prefactor(
 
     Notes
     -----
-    The returned function is elementwise and broadcasts ([1]_ for the temperature profile).
+    The returned function is elementwise and broadcasts; it leaves out the activation-volume
+    term (pressure 0), as do the presets ([1]_ for the temperature profile).
 
     References
     ----------
@@ -602,8 +608,8 @@ def steady_geotherm(
     Notes
     -----
     With ``q_m = q_s - H0 h_r`` the heat flow from below the radiogenic layer ([1]_, section 4-8,
-    eqs. 4-30 and 4-31; equation numbers from memory; there ``rho H0`` with ``H0`` per unit
-    mass, here ``H0`` per unit volume):
+    eqs. 4-30 and 4-31, section and equation numbers from memory; there ``rho H0`` with ``H0``
+    per unit mass, here ``H0`` per unit volume):
 
     .. math::
 

@@ -9,9 +9,9 @@ Two kernels extend the Newtonian channel of :mod:`crustflow.channel`:
   components of ``tau(0)`` by a vectorised, safeguarded Newton method.
 
 The flow laws, temperatures and geotherm that feed them are in :mod:`crustflow.flowlaws` and are
-re-exported here. Everything is a pure function of SI NumPy arrays that never modifies its inputs;
-work is vectorised over cells (Python loops run only over quadrature nodes, iterations and blocks
-of cells).
+re-exported here. Everything is a pure function of SI NumPy arrays that never modifies its inputs
+(a dask array is computed on entry); work is vectorised over cells (Python loops run only over
+quadrature nodes, polynomial terms, iterations and blocks of cells).
 
 Conventions
 -----------
@@ -24,11 +24,11 @@ Conventions
 References
 ----------
 .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., Cambridge University Press,
-   sections 6.2 and 7 (from memory for the power-law section).
-.. [2] Davis, P. J. & Rabinowitz, P. (1984). *Methods of Numerical Integration*, 2nd ed.,
-   Academic Press, section 2.7 (Gauss-Legendre error term).
+   section 6.2 and chapter 7 (power-law fluids; from memory).
+.. [2] Abramowitz, M. & Stegun, I. A. (1964). *Handbook of Mathematical Functions*, NBS Applied
+   Mathematics Series 55, eq. 25.4.30 (Gauss-Legendre error term; equation number from memory).
 .. [3] Dennis, J. E. & Schnabel, R. B. (1996). *Numerical Methods for Unconstrained Optimization
-   and Nonlinear Equations*, SIAM, section 6.3 (backtracking line search).
+   and Nonlinear Equations*, SIAM, section 6.3 (backtracking line search; from memory).
 """
 
 from __future__ import annotations
@@ -97,8 +97,11 @@ PEAK_SAMPLES = 8
 PEAK_NEWTON_STEPS = 4
 #: Largest odd integer exponent solved with exact polynomial integrals.
 LARGEST_POLYNOMIAL_EXPONENT = 15
-#: Cells per block: keeps the temporary arrays in cache (numerical choice, no physics).
-BLOCK_CELLS = 15872
+#: Cells per block (numerical choice): temporaries of 120 KiB stay in cache and below glibc's 128 KiB
+#: mmap threshold, so they are not mapped and unmapped for every operation.
+BLOCK_CELLS = 15360
+#: Cells per block where quadrature makes (nodes, cells) temporaries (numerical choice, measured).
+QUADRATURE_BLOCK_CELLS = 4096
 
 
 @lru_cache(maxsize=32)
@@ -158,7 +161,7 @@ def fluidity_moments_gauss(
 
     Notes
     -----
-    The ``N``-node rule on ``[0, h]`` errs by ([2]_, section 2.7)
+    The ``N``-node rule on ``[0, h]`` errs by ([2]_, eq. 25.4.30, from memory)
 
     .. math:: E_N = \\frac{h^{2N+1} (N!)^4}{(2N+1) [(2N)!]^3} f^{(2N)}(\\xi)
 
@@ -170,7 +173,8 @@ def fluidity_moments_gauss(
     References
     ----------
     .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2.
-    .. [2] Davis, P. J. & Rabinowitz, P. (1984). *Methods of Numerical Integration*, 2nd ed.
+    .. [2] Abramowitz, M. & Stegun, I. A. (1964). *Handbook of Mathematical Functions*, NBS
+       Applied Mathematics Series 55, eq. 25.4.30.
     """
     if int(order) < 2:
         raise CrustflowInputError(f"order must be at least 2 Gauss nodes, got {order}")
@@ -192,7 +196,7 @@ def fluidity_moments_gauss(
         return result
     coarse = moments(max(int(order) // 2, 1))
     with np.errstate(divide="ignore", invalid="ignore"):
-        errors = [np.abs(fine - rough) / np.abs(fine) for fine, rough in zip(result, coarse)]
+        errors = [np.abs(a - b) / np.abs(a) for a, b in zip(result, coarse, strict=True)]
     return (*result, np.maximum.reduce(errors))
 
 
@@ -202,7 +206,7 @@ def _phi(k: int, x: np.ndarray) -> np.ndarray:
     xs = np.where(small, x, 0.0)
     series = np.zeros_like(x)
     term = np.ones_like(x)
-    for j in range(31):  # |x| < 2: the 31st term is below 4e-24 of the sum
+    for j in range(31):  # |x| < 2: the last term is below 1e-24 of the sum
         series = series + term / (j + k + 1)
         term = term * xs / (j + 1)
     xl = np.where(small, 1.0, x)
@@ -291,8 +295,8 @@ def arrhenius_fluidity_moments(
 
     Notes
     -----
-    ``eta(zeta) = 1 / A(T(zeta))`` with ``T`` from :func:`temperature_profile`; see
-    :func:`fluidity_moments_gauss` for the accuracy.
+    ``eta(zeta) = 1 / A(T(zeta))`` with ``T`` from :func:`temperature_profile`, at zero pressure
+    (no activation-volume term); see :func:`fluidity_moments_gauss` for the accuracy.
 
     References
     ----------
@@ -324,8 +328,9 @@ class PowerLawSolution(ChannelSolution):
     effective_viscosity : numpy.ndarray
         Harmonic depth average of the local viscosity ``tau / gamma_dot`` (Pa s):
         ``h / integral_0^h A |tau|^(n-1) dzeta``, the uniform viscosity with the same zeroth
-        fluidity moment. It is ``1/A`` for n = 1 and ``|tau| / gamma_dot`` for a purely
-        wall-driven channel; infinite for a channel at rest with n > 1.
+        fluidity moment. It is ``1/A`` for n = 1 with a uniform ``A``, ``|tau| / gamma_dot`` for a
+        purely wall-driven channel with a uniform ``A``, and infinite for a channel at rest
+        with n > 1.
     converged : numpy.ndarray
         Boolean: the upper-wall condition holds to :data:`SOLVER_RTOL`. False where an input is
         NaN (nothing solved) and where the solver failed (values are then the last iterate).
@@ -339,7 +344,11 @@ class PowerLawSolution(ChannelSolution):
     The other fields are those of ``ChannelSolution``; for a power-law channel the
     ``wall_driven_share`` takes ``q_wall`` as the flux of the same channel without drive (``U h / 2``
     for a uniform prefactor) and ``q_pressure = q - q_wall``, which is the Newtonian definition
-    when n = 1.
+    when n = 1 ([1]_).
+
+    References
+    ----------
+    .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2.
     """
 
     effective_viscosity: np.ndarray
@@ -427,14 +436,20 @@ def _monomial(coef, powers, exponents):
     return out
 
 
-def _poly_sums(a, b, c, mu, p, *, derivatives=False, flux=False):
-    """E, O (and F) = sum_k pi_k mu_{k}, mu_{k+1} (, mu_{k+2}) and dE/da, dE/db, dO/da, dO/db."""
+def _ladders(bases, p: int) -> list[list]:
+    """``[1, x, x^2, ..., x^p]`` for each x in ``bases`` (by multiplication)."""
     powers = []
-    for base in (a, b, c):
+    for base in bases:
         ladder = [1.0, base]
         for _ in range(p - 1):
             ladder.append(ladder[-1] * base)
         powers.append(ladder)
+    return powers
+
+
+def _poly_sums(a, b, c, mu, p, *, derivatives=False, flux=False):
+    """E, O (and F) = sum_k pi_k mu_{k}, mu_{k+1} (, mu_{k+2}) and dE/da, dE/db, dO/da, dO/db."""
+    powers = _ladders((a, b, c), p)
     sums = [0.0] * (7 if derivatives else 3)
 
     def add(slot, value, j):
@@ -636,12 +651,7 @@ def _poly_coefficients(cells: _Cells, law: _Law, m_e, m_n):
     """
     g_e, g_n = cells.g_e, cells.g_n
     t_e, t_n = m_e - 0.5 * g_e, m_n - 0.5 * g_n
-    powers = []
-    for base in (t_e * t_e + t_n * t_n, t_e * g_e + t_n * g_n, cells.gg):
-        ladder = [1.0, base]
-        for _ in range(law.p - 1):
-            ladder.append(ladder[-1] * base)
-        powers.append(ladder)
+    powers = _ladders((t_e * t_e + t_n * t_n, t_e * g_e + t_n * g_n, cells.gg), law.p)
     pi = [0.0] * (2 * law.p + 1)
     for coef, i, j, l_, k in _poly_terms(law.p):
         pi[k] = pi[k] + _monomial(coef, powers, (i, j, l_))
@@ -692,8 +702,8 @@ def _peak(cells: _Cells, law: _Law, m_e, m_n, coefficients):
         if coefficients is not None:
             u_e, u_n = _velocity(cells, law, m_e, m_n, s, coefficients)
         else:  # cumulative panels
-            step = _quad(cells, law, m_e, m_n, s - spacing, s, nodes=short)
-            u_e, u_n = u_e + step[0], u_n + step[1]
+            part = _quad(cells, law, m_e, m_n, s - spacing, s, nodes=short)
+            u_e, u_n = u_e + part[0], u_n + part[1]
         speed2 = u_e * u_e + u_n * u_n
         better = speed2 > best2
         best2 = np.maximum(speed2, best2)
@@ -711,13 +721,13 @@ def _peak(cells: _Cells, law: _Law, m_e, m_n, coefficients):
         # Step only where the slope is negative (towards a maximum), within the bracket.
         slope = np.minimum(slope, 0.0)
         with np.errstate(divide="ignore", invalid="ignore"):
-            step = phi / slope
-        s = np.minimum(np.maximum(s - np.where(slope < 0.0, step, 0.0), lo), hi)
+            move = phi / slope
+        s = np.minimum(np.maximum(s - np.where(slope < 0.0, move, 0.0), lo), hi)
         if coefficients is not None:
             v_e, v_n = _velocity(cells, law, m_e, m_n, s, coefficients)
         else:
-            step = _quad(cells, law, m_e, m_n, anchor, s, nodes=short)
-            v_e, v_n = anchor_e + step[0], anchor_n + step[1]
+            part = _quad(cells, law, m_e, m_n, anchor, s, nodes=short)
+            v_e, v_n = anchor_e + part[0], anchor_n + part[1]
     # Candidates: lower wall (speed 0), best sample, refined point, least |tau|, upper wall.
     star = _minimum_point(cells, m_e, m_n, -0.5, 0.5)
     candidates = [
@@ -795,7 +805,7 @@ def _outputs(cells: _Cells, law: _Law, m_e, m_n) -> dict[str, np.ndarray]:
         "lower_wall_drag_north": stress * (m_n - 0.5 * g_n),
         "backflow": backflow,
         "wall_driven_share": share,
-        "effective_viscosity": np.broadcast_to(viscosity, h.shape),
+        "effective_viscosity": viscosity,
     }
 
 
@@ -1011,23 +1021,27 @@ def power_law_channel(
     uniform prefactor; 16-node Gauss-Legendre of the smooth profile otherwise). Other n: Gauss-
     Legendre on two pieces split at the height of least ``|tau|`` (where ``tau`` crosses zero
     when drive and wall motion are parallel, e.g. fixed walls): each piece is then smooth apart
-    from an end point. Measured worst error of the integrals, relative to ``integral |tau|^n``,
-    over parallel and near-parallel cases: 2e-8 (n = 1.5, 32 nodes), 4e-10 (n = 2.3, 24),
-    5e-11 (n = 3.1, 16), 2e-11 (n = 4, 16), 7e-13 (n = 4.7, 16).
+    from an end point (``|x|^n`` in the parallel case). Measured worst error of the integrals,
+    relative to ``integral |tau|^n``, over parallel and near-parallel cases (least ``|tau|``
+    from 0 to the drive's scale) against ``scipy.integrate.quad``: 6e-9 (n = 1.5, 32 nodes),
+    4e-10 (n = 2.3, 24), 5e-11 (n = 3.1, 16), 2e-11 (n = 4, 16), 7e-13 (n = 4.7, 16).
 
-    *Peak speed.* ``|u|`` at 8 heights, at the height of least ``|tau|``, and after 3 Newton steps
-    on ``u . tau = 0`` from the best of them (bracketed to one sample spacing); never more than
-    the true peak, and exact to rounding where the peak is a smooth maximum near the best sample.
-    *Backflow*: ``u . q`` has a single interior extremum, where ``tau . q = 0``, so the test is
-    exact; tolerances as :func:`crustflow.channel.channel_flow`.
+    *Peak speed.* ``|u|`` at the walls, at 7 interior heights, at the height of least ``|tau|``
+    (the peak itself in the parallel case) and after 4 Newton steps on ``u . tau = 0`` from the
+    best interior sample, bracketed to one sample spacing: never more than the true peak, and
+    exact to rounding where the peak is a smooth maximum within the bracket (its height only to
+    about 1e-8 of ``h``: the top is flat). *Backflow*: ``d(u . q)/dzeta`` has the sign of
+    ``tau . q``, linear in height, so ``u . q`` has one interior extremum and the test is exact;
+    tolerances as :func:`crustflow.channel.channel_flow`.
 
     References
     ----------
-    .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., sections 6.2 and
-       7.11 (power-law channel flow; section number from memory).
-    .. [2] Davis, P. J. & Rabinowitz, P. (1984). *Methods of Numerical Integration*, 2nd ed.
+    .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2 and
+       chapter 7 (power-law fluids; from memory).
+    .. [2] Abramowitz, M. & Stegun, I. A. (1964). *Handbook of Mathematical Functions*, NBS
+       Applied Mathematics Series 55, eq. 25.4.30 (Gauss-Legendre; from memory).
     .. [3] Dennis, J. E. & Schnabel, R. B. (1996). *Numerical Methods for Unconstrained
-       Optimization and Nonlinear Equations*, SIAM, section 6.3.
+       Optimization and Nonlinear Equations*, SIAM, section 6.3 (from memory).
     """
     law = _law_config(stress_exponent, prefactor_profile, quadrature_nodes)
     shape, flat, args = _flatten(
@@ -1047,8 +1061,10 @@ def power_law_channel(
     out["converged"] = np.zeros(size, dtype=bool)
     out["iterations"] = np.zeros(size, dtype=np.int32)
     solved = 0
-    for start in range(0, size, BLOCK_CELLS):
-        part = slice(start, start + BLOCK_CELLS)
+    exact = law.p is not None and law.profile is None
+    step = BLOCK_CELLS if exact else QUADRATURE_BLOCK_CELLS
+    for start in range(0, size, step):
+        part = slice(start, start + step)
         block = {k: v[part] for k, v in flat.items()}
         cells, index, m_e, m_n = _setup(law, block, tuple(a[part] for a in args))
         if index.size == 0:

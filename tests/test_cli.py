@@ -289,3 +289,34 @@ def test_bad_sections_exit_2(scenario_dir, capsys, content, message):
     err = capsys.readouterr().err.strip()
     assert code == 2 and len(err.splitlines()) == 1 and re.search(message, err), err
     assert not out.exists()
+
+
+def test_sections_without_crs_exit_2(scenario_dir, capsys):
+    import geopandas as gpd
+    from shapely.geometry import LineString
+
+    lines = gpd.GeoDataFrame({"name": ["a"]}, geometry=[LineString([(350e3, 5100e3),
+                                                                    (450e3, 5100e3)])])
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # pyogrio warns about the missing CRS
+        lines.to_file(scenario_dir / "nocrs.gpkg", driver="GPKG")
+    code = main(["budget", str(scenario_dir / "scenario.toml"), "--sections",
+                 str(scenario_dir / "nocrs.gpkg"), "--out", str(scenario_dir / "out")])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1 and "CRS" in err, err
+    assert not (scenario_dir / "out").exists()
+
+
+def test_api_budget_table_matches_command(demo_run):
+    import pandas as pd
+
+    import crustflow
+    from crustflow.samples import demo_scenario
+
+    scenario = crustflow.load_scenario(demo_scenario("plateau"))
+    table = crustflow.budget_table(crustflow.solve(scenario), scenario.sections, scenario.regions)
+    written = pd.read_csv(demo_run / "budgets.csv")
+    np.testing.assert_allclose(table["volume_flux_m3_per_yr"], written["volume_flux_m3_per_yr"],
+                               rtol=1e-5)  # the command reads float32 fields back from fields.nc

@@ -24,7 +24,6 @@ from crustflow.channel import (
     flux_from_moments,
 )
 from crustflow.errors import CrustflowInputError
-from crustflow.flowlaws import _check_temperature
 from crustflow.rheology import (
     FLOW_LAWS,
     GAS_CONSTANT,
@@ -279,7 +278,7 @@ def test_temperatures_out_of_range_raise_one_line_errors():
         temperature_profile(0.0, 10e3, 900.0, 5000.0)
     assert "\n" not in str(info.value)
     # NaN passes as nodata.
-    assert np.isnan(_check_temperature(np.nan, "t"))
+    assert np.isnan(simple_shear_prefactor(law, np.array([np.nan, 900.0]))[0])
 
 
 def test_temperature_profile_is_linear_between_the_walls():
@@ -348,8 +347,8 @@ def test_exponential_moments_closed_form_against_quad(length):
 
 @pytest.mark.parametrize("contrast", [1e3, 1e6, 1e-6])
 def test_gauss_moments_against_the_exponential_closed_form(contrast):
-    # Gauss-Legendre error bound (Davis & Rabinowitz 1984): below 1.4e-17 for N = 16 and a
-    # viscosity contrast of 1e6; checked at rounding level.
+    # Gauss-Legendre error bound (Abramowitz & Stegun 1964, eq. 25.4.30, from memory): below
+    # 1.4e-17 for N = 16 and a viscosity contrast of 1e6; checked at rounding level.
     h = np.array([10e3, 30e3])
     length = h / np.log(contrast)
     eta0 = 1e21
@@ -501,8 +500,26 @@ def test_channel_at_rest():
 @pytest.mark.parametrize("n", [3.0, 5.0, 2.5, 4.0, 4.7])
 @pytest.mark.parametrize(
     "ratio, angle",
-    [(0.5, 0.0), (2.0, np.pi), (0.9, np.pi), (1.0, 1.1), (0.3, 2.5), (3.0, 4.0)],
-    ids=["along", "against", "against-backflow", "oblique", "oblique-weak", "oblique-strong"],
+    [
+        (0.5, 0.0),
+        (2.0, np.pi),
+        (0.9, np.pi),
+        (0.9, np.pi + 1e-7),
+        (0.7, 1e-4),
+        (1.0, 1.1),
+        (0.3, 2.5),
+        (3.0, 4.0),
+    ],
+    ids=[
+        "along",
+        "against",
+        "against-backflow",
+        "nearly-against",
+        "nearly-along",
+        "oblique",
+        "oblique-weak",
+        "oblique-strong",
+    ],
 )
 def test_wall_conditions_hold_to_1e9(n, ratio, angle):
     # Both wall conditions, integrating du/dzeta = A |tau|^(n-1) tau from the returned tau(0)
@@ -742,3 +759,48 @@ def test_power_law_input_errors():
         power_law_channel(1.0, 0.0, 10e3, 1e-30, 4.0, prefactor_profile=3.0)
     with pytest.raises(CrustflowInputError, match=r"drive_east must be a number or an array"):
         power_law_channel("steep", 0.0, 10e3, 1e-30, 3.0)
+
+
+def test_newtonian_law_across_the_channel_equals_the_fluidity_moments():
+    # n = 1 through the power-law path (exact polynomial integrals over Gauss moments of A(zeta))
+    # against fluidity moments and flux_from_moments (SCIENCE.md, exact for any eta(zeta)).
+    law = newtonian_flow_law(1e19, 1000.0, 300e3)
+    h, top, base = np.array([12e3, 25e3]), np.array([850.0, 900.0]), np.array([1050.0, 1150.0])
+    g_e, g_n, u_e, u_n = np.array([80.0, -20.0]), 35.0, 4e-10, np.array([-1e-10, 6e-10])
+    sol = flow_law_channel(g_e, g_n, h, law, top, base, wall_east=u_e, wall_north=u_n)
+    q_e, q_n, t_e, t_n = flux_from_moments(
+        g_e, g_n, h, *arrhenius_fluidity_moments(law, h, top, base), wall_east=u_e, wall_north=u_n
+    )
+    assert_allclose(sol.flux_east, q_e, rtol=1e-12)
+    assert_allclose(sol.flux_north, q_n, rtol=1e-12)
+    assert_allclose(sol.lower_wall_drag_east, t_e, rtol=1e-12)
+    # Effective viscosity: harmonic mean h / I0 (definition, PowerLawSolution).
+    i0 = arrhenius_fluidity_moments(law, h, top, base)[0]
+    assert_allclose(sol.effective_viscosity, h / i0, rtol=1e-12)
+
+
+@pytest.mark.parametrize("n", [3.0, 4.0])
+def test_peak_speed_with_temperature_across_the_channel(n):
+    law = FlowLaw("test", 1e-4, "MPa^-n s^-1", n, 230e3)
+    h = 18e3
+    top, base = np.array([800.0, 870.0, 900.0]), np.array([1000.0, 1000.0, 1100.0])
+    g_e, g_n = np.array([150.0, 60.0, -90.0]), np.array([20.0, -140.0, 10.0])
+    u_e, u_n = np.array([5e-10, -2e-10, 1e-9]), np.array([3e-10, 8e-10, -4e-10])
+    sol = flow_law_channel(g_e, g_n, h, law, top, base, wall_east=u_e, wall_north=u_n)
+    zeta = np.linspace(0.0, h, 3001)[:, None]
+    u = power_law_profile(
+        zeta,
+        g_e,
+        g_n,
+        h,
+        1.0,
+        n,
+        wall_east=u_e,
+        wall_north=u_n,
+        prefactor_profile=linear_temperature_prefactor(law),
+        profile_args=(h, top, base),
+    )
+    dense = np.hypot(u[0], u[1]).max(axis=0)
+    assert np.all(sol.peak_speed >= dense * (1 - 1e-9))
+    assert_allclose(sol.peak_speed, dense, rtol=1e-6)
+    assert_allclose(np.hypot(u[0][-1], u[1][-1]), np.hypot(u_e, u_n), rtol=1e-8)
