@@ -41,9 +41,9 @@ def __getattr__(name: str):
 
         return getattr(budgets, name)
     if name == "samples":
-        from . import samples
+        import importlib
 
-        return samples
+        return importlib.import_module(".samples", __name__)
     if name in ("channel_flow", "velocity_profile"):
         from . import channel
 
