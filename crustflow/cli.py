@@ -18,7 +18,7 @@ from .errors import CrustflowInputError
 
 CAUTION_HELP = (
     "Outputs are research estimates of a simplified model (thin channel, rigid walls, lithostatic "
-    "load, Newtonian viscosity); they are no basis for hazard or engineering decisions without "
+    "load, idealised rheology); they are no basis for hazard or engineering decisions without "
     "local, licensed review."
 )
 
@@ -158,11 +158,15 @@ def _summary(result: dict) -> None:
         unit = VARIABLES[name].units
         text = f"{lo:.3g} to {hi:.3g} {unit}" if lo <= hi else "no valid cells"
         print(f"  {labels[name]:<16} {text}")
+    if result.get("unconverged_cells"):
+        print(f"  WARNING: the per-cell solver did not converge in {result['unconverged_cells']} "
+              "cells (solver_converged = 0 there; their values are the last iterate)")
     if result["backflow_cells"] is not None:
         print(f"  backflow cells   {result['backflow_cells']} of {result['valid_cells']}")
 
 
 def _check(scenario_path: Path) -> int:
+    from .channel_setup import CellInputCheck
     from .fields import ThinCrustCheck, crust_thickness_of
     from .grids import GridChecks, close_sources, open_sources
     from .scenario import load_scenario
@@ -175,6 +179,7 @@ def _check(scenario_path: Path) -> int:
         topo = sources["topography"]
         checks = GridChecks(sources)
         thin = ThinCrustCheck(p.channel_thickness)
+        cell_check = CellInputCheck()
         rows = strip_rows_for(topo.width)
         for r0 in range(0, topo.height, rows):
             arrays = {k: src.read(r0, min(topo.height, r0 + rows)) for k, src in sources.items()}
@@ -182,8 +187,11 @@ def _check(scenario_path: Path) -> int:
             H = arrays["topography"]
             T = crust_thickness_of(H, p, crust_thickness=arrays.get("crust_thickness"),
                                    moho_depth=arrays.get("moho_depth"))
-            thin.update(np.where(np.isfinite(H), T, np.nan))
+            cell = {k: g.to_si(arrays[k]) for k, g in scenario.channel.grids.items()}
+            cell_check.update(cell)
+            thin.update(np.where(np.isfinite(H), T, np.nan), cell.get("channel_thickness"))
         checks.finish()
+        cell_check.finish()
         thin.finish()
         unit = "degrees" if topo.crs.is_geographic else "m"
         print(f"scenario         {scenario.title}")
@@ -269,6 +277,35 @@ def _same_run(run_dir: Path, scenario, needed) -> bool:
     return all(inputs.get(str(p), {}).get("sha256") == file_checksum(p) for p in grids)
 
 
+def _profile(scenario_path: Path, at, points, crs, out: Path, quiet: bool) -> int:
+    from .export import atomic_folder, base_manifest, write_manifest
+    from .profiles import read_points, velocity_profiles, write_profile_outputs
+    from .scenario import load_scenario
+
+    if (at is None) == (points is None):
+        raise CrustflowInputError("give the site with --at X Y, or several with --points FILE")
+    scenario = load_scenario(scenario_path)
+    if at is not None:
+        sites = [(f"{at[0]:g}_{at[1]:g}", at[0], at[1], crs)]
+    else:
+        sites = read_points(points)
+    ds = velocity_profiles(scenario, sites)
+    with atomic_folder(out, scenario.input_paths) as tmp:
+        files = write_profile_outputs(ds, tmp)
+        write_manifest(tmp, base_manifest(scenario, {}), files)
+    print(f"  {'site':<20} {'flux east':>11} {'flux north':>11} {'upper drag E':>12} "
+          f"{'upper drag N':>12} {'lower drag E':>12} {'lower drag N':>12}")
+    print(f"  {'':<20} {'m2/yr':>11} {'m2/yr':>11} {'MPa':>12} {'MPa':>12} {'MPa':>12} {'MPa':>12}")
+    for site in ds.site.values:
+        s = ds.sel(site=site)
+        print(f"  {str(site)[:20]:<20} {float(s.flux_east):>11.4g} {float(s.flux_north):>11.4g} "
+              f"{float(s.upper_wall_drag_east):>12.4g} {float(s.upper_wall_drag_north):>12.4g} "
+              f"{float(s.lower_wall_drag_east):>12.4g} {float(s.lower_wall_drag_north):>12.4g}")
+    if not quiet:
+        print(f"crustflow: wrote {out.expanduser().resolve()}", file=sys.stderr)
+    return 0
+
+
 def _demo(out: Path, quiet: bool, scenario_name: str) -> int:
     from .samples import demo_scenario
 
@@ -343,6 +380,19 @@ def build_parser() -> argparse.ArgumentParser:
     budget.add_argument("--out", type=Path, default=Path("crustflow_budgets"),
                         help="output folder (default: ./crustflow_budgets)")
     budget.add_argument("--quiet", action="store_true", help="print only the table and errors")
+    profile = sub.add_parser(
+        "profile", help="velocity and stress profiles across the channel at sites",
+        description="Velocity, shear stress, viscosity (and temperature) across the channel at one "
+        "site (--at X Y) or several (--points FILE): writes profile_<site>.csv and "
+        "profile_<site>.png and prints the flux and wall drag.\n\n" + CAUTION_HELP, **common)
+    profile.add_argument("scenario", type=Path, help="scenario file (TOML)")
+    profile.add_argument("--at", nargs=2, type=float, metavar=("X", "Y"),
+                         help="site coordinates (in --crs, default the grid's CRS)")
+    profile.add_argument("--crs", default=None, help="CRS of --at, e.g. EPSG:4326 (lon lat)")
+    profile.add_argument("--points", type=Path, help="vector file of Point sites (name attribute)")
+    profile.add_argument("--out", type=Path, default=Path("crustflow_profiles"),
+                         help="output folder (default: ./crustflow_profiles)")
+    profile.add_argument("--quiet", action="store_true", help="print only the table and errors")
     check = sub.add_parser(
         "check",
         help="validate a scenario and its grids without writing anything",
@@ -380,6 +430,8 @@ def _main(argv: list[str] | None) -> int:
         if args.command == "budget":
             return _budget(args.scenario, args.sections, args.regions, args.run, args.out,
                            args.quiet)
+        if args.command == "profile":
+            return _profile(args.scenario, args.at, args.points, args.crs, args.out, args.quiet)
         if args.command == "check":
             return _check(args.scenario)
     except CrustflowInputError as exc:

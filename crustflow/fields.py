@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import load
-from .channel import channel_flow, channel_flux
+from .channel_setup import ChannelSetup, solve_cells
 from .constants import SECONDS_PER_YEAR
 from .errors import CrustflowInputError
 from .maps import azimuth, divergence
@@ -31,6 +31,7 @@ class Variable:
     units: str  #: UDUNITS form, as written to files
     factor: float  #: value in ``units`` = value in SI x factor
     flag: bool = False  #: 0/1 flag variable
+    flag_meanings: str = "no_backflow backflow"
     standard_name: str | None = None
 
 
@@ -40,6 +41,7 @@ _M2_YR = SECONDS_PER_YEAR
 #: Every variable crustflow writes, in output order. Rates use the Julian year (365.25 d).
 VARIABLES: dict[str, Variable] = {
     "crust_thickness": Variable("crustal thickness, surface to Moho", "km", 1e-3),
+    "channel_thickness": Variable("channel thickness", "km", 1e-3),
     "channel_top_depth": Variable("depth of the channel top below sea level", "km", 1e-3),
     "overburden_pressure": Variable("lithostatic pressure at the channel top", "MPa", 1e-6),
     "drive_east": Variable(
@@ -78,13 +80,21 @@ VARIABLES: dict[str, Variable] = {
     ),
     "thickening_rate": Variable("crustal thickening rate, -div(q)", "mm yr-1", _MM_YR),
     "uplift_rate": Variable("isostatic surface uplift rate from thickening", "mm yr-1", _MM_YR),
+    "effective_viscosity": Variable(
+        "depth-averaged effective viscosity of the channel, h / integral of 1/eta", "Pa s", 1.0
+    ),
+    "solver_converged": Variable(
+        "per-cell solver converged (power-law and flow-law channels; 1 for closed forms)", "1", 1.0,
+        flag=True, flag_meanings="not_converged converged",
+    ),
 }
 
 
 #: One-line caution carried by every output.
 CAUTION = (
     "Research estimate of a simplified model (thin channel, rigid walls, lithostatic load, "
-    "Newtonian); no basis for hazard or engineering decisions without local, licensed review."
+    "idealised rheology); no basis for hazard or engineering decisions without local, licensed "
+    "review."
 )
 
 
@@ -92,7 +102,8 @@ CAUTION = (
 CELL_EXTRAS = {
     "mean_velocity_east", "mean_velocity_north", "peak_speed", "peak_speed_height",
     "upper_wall_drag_east", "upper_wall_drag_north", "lower_wall_drag_east",
-    "lower_wall_drag_north", "backflow", "wall_driven_share",
+    "lower_wall_drag_north", "backflow", "wall_driven_share", "effective_viscosity",
+    "solver_converged",
 }
 
 
@@ -118,12 +129,14 @@ def crust_thickness_of(
 class ThinCrustCheck:
     """Counts cells where the channel is not thinner than the crust; :meth:`finish` raises."""
 
-    def __init__(self, channel_thickness: float) -> None:
+    def __init__(self, channel_thickness: float | None) -> None:
         self.h, self.cells, self.thinnest = channel_thickness, 0, np.inf
 
-    def update(self, crust_thickness: np.ndarray) -> None:
-        """Add a strip of crustal thickness values, m."""
-        bad = np.isfinite(crust_thickness) & (crust_thickness <= self.h)
+    def update(self, crust_thickness: np.ndarray, channel_thickness=None) -> None:
+        """Add a strip of crustal thickness values (and channel thickness, if a grid), m."""
+        h = self.h if channel_thickness is None else channel_thickness
+        with np.errstate(invalid="ignore"):
+            bad = np.isfinite(crust_thickness) & (crust_thickness <= h)
         self.cells += int(bad.sum())
         finite = crust_thickness[np.isfinite(crust_thickness)]
         if finite.size:
@@ -132,8 +145,9 @@ class ThinCrustCheck:
     def finish(self) -> None:
         """Raise :class:`CrustflowInputError` if any cell failed."""
         if self.cells:
+            what = f"({self.h / 1e3:g} km) " if self.h is not None else "(grid) "
             raise CrustflowInputError(
-                f"channel.thickness ({self.h / 1e3:g} km) is not less than the crustal thickness in "
+                f"channel.thickness {what}is not less than the crustal thickness in "
                 f"{self.cells} cells (thinnest crust {self.thinnest / 1e3:.3g} km); give a thinner "
                 "channel or check the thickness grid"
             )
@@ -146,6 +160,8 @@ def fields_si(
     parameters: ModelParameters,
     *,
     wanted=None,
+    setup=None,
+    cell: dict | None = None,
 ) -> dict[str, np.ndarray]:
     """Every output variable in SI units on one block of rows (numpy arrays).
 
@@ -158,6 +174,11 @@ def fields_si(
     parameters : ModelParameters
     wanted : set of str, optional
         Variables to compute (default: all of :data:`VARIABLES`); others are left out.
+    setup : crustflow.channel_setup.ChannelSetup, optional
+        Rheology (default: Newtonian with ``parameters.viscosity``).
+    cell : dict, optional
+        Parameter grids on the same cells, SI (``channel_thickness``, ``viscosity``,
+        ``temperature_top``, ``temperature_base``, ``surface_heat_flow``); they replace the scalars.
 
     Returns
     -------
@@ -170,7 +191,16 @@ def fields_si(
     valid = np.isfinite(elevation) & np.isfinite(crust_thickness)
     H = np.where(valid, elevation, np.nan)
     T = np.where(valid, crust_thickness, np.nan)
-    h = p.channel_thickness
+    cell = cell or {}
+    setup = setup if setup is not None else ChannelSetup()
+    h = cell.get("channel_thickness", p.channel_thickness)
+    if np.ndim(h):
+        valid = valid & np.isfinite(h)
+        H = np.where(valid, H, np.nan)
+        T = np.where(valid, T, np.nan)
+    for key in ("viscosity", "temperature_top", "temperature_base", "surface_heat_flow"):
+        if key in cell:  # a cell without a parameter value depends on nodata
+            valid = valid & np.isfinite(cell[key])
     z_top = load.channel_top_depth(H, T, h)
     p_top = load.overburden_pressure(
         H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water, gravity=p.gravity
@@ -186,15 +216,15 @@ def fields_si(
         "drive_east": g_east,
         "drive_north": g_north,
     }
-    if wanted & CELL_EXTRAS:
-        sol = channel_flow(
-            g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
+    live = live & valid
+    out.update(
+        solve_cells(
+            np.where(live, g_east, np.nan), np.where(live, g_north, np.nan), h, setup,
+            viscosity=p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north, cell=cell,
+            elevation=H, top_depth=z_top, full=bool(wanted & CELL_EXTRAS),
         )
-        out.update(sol.as_dict())
-    else:  # only the flux is needed: skip peak speed, drag and backflow
-        out["flux_east"], out["flux_north"] = channel_flux(
-            g_east, g_north, h, p.viscosity, wall_east=p.wall_east, wall_north=p.wall_north
-        )
+    )
+    out["channel_thickness"] = np.broadcast_to(np.asarray(h, dtype=float), np.shape(H))
     q_east, q_north = out["flux_east"], out["flux_north"]
     if wanted & {"thickening_rate", "uplift_rate"}:
         thickening = -divergence(q_east, q_north, geometry)
@@ -215,7 +245,8 @@ def fields_si(
             values = values.astype("float64")
         mask = (
             valid
-            if name in ("crust_thickness", "channel_top_depth", "overburden_pressure")
+            if name in ("crust_thickness", "channel_top_depth", "overburden_pressure",
+                        "channel_thickness")
             else live
         )
         result[name] = np.where(mask, values, np.nan)
@@ -234,7 +265,7 @@ def variable_attrs(name: str) -> dict:
     attrs = {"long_name": var.long_name, "units": var.units}
     if var.flag:
         attrs.update(
-            flag_values=np.array([0, 1], dtype="int8"), flag_meanings="no_backflow backflow"
+            flag_values=np.array([0, 1], dtype="int8"), flag_meanings=var.flag_meanings
         )
     return attrs
 

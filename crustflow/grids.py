@@ -52,6 +52,7 @@ class InputGrids:
     crust_thickness: xr.DataArray | None = None
     moho_depth: xr.DataArray | None = None
     provenance: dict = field(default_factory=dict)
+    cell: dict = field(default_factory=dict)  #: channel parameter grids, in SI
 
 
 def file_checksum(path: str | Path) -> str:
@@ -245,7 +246,7 @@ class GridChecks:
             if self.count[key] == 0:
                 where = "" if key == "topography" else " on the topography grid"
                 raise CrustflowInputError(
-                    f"grids.{key}: {src.path} holds no valid cells{where} (all "
+                    f"{src.name}: {src.path} holds no valid cells{where} (all "
                     "nodata); check the file, its extent or its nodata value"
                 )
             if key in ("crust_thickness", "moho_depth"):
@@ -282,6 +283,12 @@ def open_sources(scenario) -> dict[str, GridSource]:
             path = getattr(scenario, key)
             if path is not None:
                 sources[key] = GridSource(path, f"grids.{key}", crs=scenario.crs, target=topo)
+        labels = {"channel_thickness": "channel.thickness", "viscosity": "channel.viscosity",
+                  "temperature_top": "channel.temperature.top",
+                  "temperature_base": "channel.temperature.base",
+                  "surface_heat_flow": "channel.temperature.surface_heat_flow"}
+        for key, grid in scenario.channel.grids.items():
+            sources[key] = GridSource(grid.path, labels.get(key, key), crs=scenario.crs, target=topo)
     except BaseException:
         close_sources(sources)
         raise
@@ -347,6 +354,8 @@ def read_inputs(scenario) -> InputGrids:
         for key in ("crust_thickness", "moho_depth"):
             if key in arrays:
                 setattr(out, key, as_dataarray(arrays[key], sources["topography"], key))
+        for key, grid in scenario.channel.grids.items():
+            out.cell[key] = as_dataarray(grid.to_si(arrays[key]), sources["topography"], key)
         return out
     finally:
         close_sources(sources)

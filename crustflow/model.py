@@ -60,6 +60,8 @@ def compute_fields(
     parameters: ModelParameters,
     crust_thickness: xr.DataArray | None = None,
     moho_depth: xr.DataArray | None = None,
+    channel=None,
+    cell: dict | None = None,
     stage: Callable[[str], None] | None = None,
 ) -> xr.Dataset:
     """Channel-flow fields on the topography grid.
@@ -74,6 +76,12 @@ def compute_fields(
     crust_thickness, moho_depth : xarray.DataArray, optional
         At most one, on the topography grid's cells, m. With neither, Airy isostasy from
         ``parameters.reference_thickness``.
+    channel : crustflow.channel_setup.ChannelSetup, optional
+        Rheology (default: Newtonian with ``parameters.viscosity``).
+    cell : dict of xarray.DataArray, optional
+        Parameter grids on the topography grid's cells, SI: ``channel_thickness`` (m),
+        ``viscosity`` (Pa s), ``temperature_top``/``temperature_base`` (K), ``surface_heat_flow``
+        (W/m^2).
     stage : callable, optional
         Called with a short name as each stage starts (progress display).
 
@@ -97,6 +105,7 @@ def compute_fields(
         topography = topography.isel(y=slice(None, None, -1))
         crust_thickness = None if crust_thickness is None else crust_thickness.sortby("y", False)
         moho_depth = None if moho_depth is None else moho_depth.sortby("y", False)
+        cell = {k: v.sortby("y", False) for k, v in (cell or {}).items()}
     # The stored transform (as read from the file) gives the exact spacing; recompute it from the
     # coordinates only when there is none or the rows were flipped here.
     transform = topography.rio.transform(recalc=flip)
@@ -105,7 +114,9 @@ def compute_fields(
     )
     H = np.asarray(topography.values, dtype="float64")
     grids = {}
-    for other, key in ((crust_thickness, "crust_thickness"), (moho_depth, "moho_depth")):
+    pairs = [(crust_thickness, "crust_thickness"), (moho_depth, "moho_depth")]
+    pairs += [(v, k) for k, v in (cell or {}).items()]
+    for other, key in pairs:
         if other is None:
             continue
         if (
@@ -118,11 +129,17 @@ def compute_fields(
                 "(read both with crustflow.solve, or resample it)"
             )
         grids[key] = np.asarray(other.values, dtype="float64")
+    cell_si = {k: grids.pop(k) for k in list(grids) if k not in ("crust_thickness", "moho_depth")}
     T = crust_thickness_of(H, p, **grids)
+    from .channel_setup import CellInputCheck
+
+    cell_check = CellInputCheck()
+    cell_check.update(cell_si)
+    cell_check.finish()
     check = ThinCrustCheck(p.channel_thickness)
-    check.update(np.where(np.isfinite(H), T, np.nan))
+    check.update(np.where(np.isfinite(H), T, np.nan), cell_si.get("channel_thickness"))
     check.finish()
-    si = fields_si(H, T, geom, p)
+    si = fields_si(H, T, geom, p, setup=channel, cell=cell_si)
     data_vars = {
         name: (("y", "x"), to_practical(name, si[name]), variable_attrs(name)) for name in VARIABLES
     }
@@ -181,6 +198,8 @@ def solve(
         parameters=scenario.parameters,
         crust_thickness=grids.crust_thickness,
         moho_depth=grids.moho_depth,
+        channel=scenario.channel,
+        cell=grids.cell,
         stage=note,
     )
     note("done")

@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from . import constants
+from .channel_setup import ChannelSetup, parse_channel
 from .errors import CrustflowInputError
 from .units import parse_quantity, parse_vector
 
@@ -39,7 +40,15 @@ _SCHEMA: dict[str, Any] = {
         "water": "density",
         "channel": "density",
     },
-    "channel": {"thickness": "length", "viscosity": "viscosity"},
+    "channel": {
+        "thickness": "length|grid",
+        "viscosity": "viscosity|grid",
+        "rheology": "text",
+        "stress_exponent": "number",
+        "prefactor": "text",
+        "flow_law": "table",  # checked by crustflow.channel_setup
+        "temperature": "table",  # checked by crustflow.channel_setup
+    },
     "walls": {"upper_velocity": "vector:velocity"},
     "constants": {"gravity": "acceleration"},
     "output": {"variables": "list", "formats": "list"},
@@ -53,10 +62,10 @@ class ModelParameters:
 
     Attributes
     ----------
-    channel_thickness : float
-        Channel thickness h, m.
-    viscosity : float
-        Channel viscosity eta, Pa s (Newtonian, uniform).
+    channel_thickness : float or None
+        Channel thickness h, m (None: given as a grid).
+    viscosity : float or None
+        Channel viscosity eta, Pa s (Newtonian, uniform; None: a grid, or another rheology).
     rho_crust, rho_mantle, rho_water, rho_channel : float
         Densities, kg/m^3.
     wall_east, wall_north : float
@@ -67,8 +76,8 @@ class ModelParameters:
         Airy case only: crustal thickness where topography is at sea level, m.
     """
 
-    channel_thickness: float
-    viscosity: float
+    channel_thickness: float | None
+    viscosity: float | None
     rho_crust: float = constants.RHO_CRUST
     rho_mantle: float = constants.RHO_MANTLE
     rho_water: float = constants.RHO_WATER
@@ -90,6 +99,8 @@ class ModelParameters:
             ("constants.gravity", self.gravity, '"9.81 m/s^2"'),
         ]
         for key, value, example in checks:
+            if value is None and key in ("channel.thickness", "channel.viscosity"):
+                continue  # given as a grid, or not used by the rheology
             if not value > 0:  # also catches NaN
                 raise CrustflowInputError(
                     f"{key} must be positive (got {value:g} in SI); e.g. {example}"
@@ -140,6 +151,7 @@ class Scenario:
     written: dict = field(default_factory=dict, compare=False, repr=False)
     sections: Path | None = None
     regions: Path | None = None
+    channel: ChannelSetup = field(default_factory=ChannelSetup)
 
     def resolved(self) -> dict:
         """The scenario resolved to SI units, as a JSON-ready dict."""
@@ -152,6 +164,7 @@ class Scenario:
                 "crs": self.crs,
             },
             "parameters_SI": asdict(self.parameters),
+            "channel": self.channel.describe(),
             "budgets": {
                 "sections": str(self.sections) if self.sections else None,
                 "regions": str(self.regions) if self.regions else None,
@@ -166,9 +179,9 @@ class Scenario:
     @property
     def input_paths(self) -> list[Path]:
         """Every input file the scenario names."""
-        return [
-            p for p in (self.topography, self.crust_thickness, self.moho_depth) if p is not None
-        ]
+        paths = (self.topography, self.crust_thickness, self.moho_depth, self.sections, self.regions)
+        grids = tuple(g.path for g in self.channel.grids.values())
+        return [p for p in paths + grids if p is not None]
 
 
 def _unknown_key(key: str, valid: list[str], where: str) -> CrustflowInputError:
@@ -187,7 +200,7 @@ def _check_keys(raw: dict, schema: dict, where: str) -> None:
                     f"[{key}] must be a table (a [{key}] section), not a value"
                 )
             _check_keys(value, schema[key], f"[{key}]")
-        elif isinstance(value, dict):
+        elif isinstance(value, dict) and not schema[key].endswith(("|grid", "table")):
             raise CrustflowInputError(
                 f"{where.strip('[]') or 'top level'} key '{key}' takes a value, not a table"
             )
@@ -237,10 +250,7 @@ def scenario_from_dict(
         )
     dens = raw.get("densities", {})
     chan = raw.get("channel", {})
-    for key in ("thickness", "viscosity"):
-        if key not in chan:
-            example = {"thickness": '"15 km"', "viscosity": '"1e19 Pa*s"'}[key]
-            raise CrustflowInputError(f"the scenario needs [channel] {key} = {example}")
+    thickness, viscosity, channel_setup = parse_channel(chan, base)
     reference = None
     if "reference_thickness" in grids:
         if "crust_thickness" in grids or "moho_depth" in grids:
@@ -273,8 +283,8 @@ def scenario_from_dict(
             raw["constants"]["gravity"], "constants.gravity", "acceleration"
         )
     params = ModelParameters(
-        channel_thickness=parse_quantity(chan["thickness"], "channel.thickness", "length"),
-        viscosity=parse_quantity(chan["viscosity"], "channel.viscosity", "viscosity"),
+        channel_thickness=thickness,
+        viscosity=viscosity,
         wall_east=wall[0],
         wall_north=wall[1],
         reference_thickness=reference,
@@ -311,6 +321,7 @@ def scenario_from_dict(
     sections = _path(budgets["sections"], "budgets.sections", base) if "sections" in budgets else None
     regions = _path(budgets["regions"], "budgets.regions", base) if "regions" in budgets else None
     return Scenario(
+        channel=channel_setup,
         sections=sections,
         regions=regions,
         title=title,

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .channel_setup import CellInputCheck
 from .fields import (
     CELL_EXTRAS,
     VARIABLES,
@@ -194,9 +195,10 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         step = max(1, -(-max(height, width) // FIGURE_CELLS))
         fig_rows = {n: [] for n in figure_vars}
         ranges = {n: [np.inf, -np.inf] for n in summary}
-        counts = {"backflow": 0, "valid": 0}
+        counts = {"backflow": 0, "valid": 0, "unconverged": 0}
         checks = GridChecks(sources)
         thin = ThinCrustCheck(p.channel_thickness)
+        cell_check = CellInputCheck()
         note("compute and write")
         from tqdm import tqdm
 
@@ -225,11 +227,15 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
                 crust_thickness=arrays.get("crust_thickness"),
                 moho_depth=arrays.get("moho_depth"),
             )
-            thin.update(np.where(np.isfinite(H), T, np.nan)[r0 - a : r1 - a])
-            if thin.cells:
+            cell = {k: g.to_si(arrays[k]) for k, g in scenario.channel.grids.items()}
+            cell_check.update({k: v[r0 - a : r1 - a] for k, v in cell.items()})
+            h_cell = cell.get("channel_thickness")
+            thin.update(np.where(np.isfinite(H), T, np.nan)[r0 - a : r1 - a],
+                        None if h_cell is None else h_cell[r0 - a : r1 - a])
+            if thin.cells or cell_check.bad:
                 break
             geom = grid_geometry(x, y[a:b], topo.crs, spacing=(t.a, t.e))
-            si = fields_si(H, T, geom, p, wanted=wanted)
+            si = fields_si(H, T, geom, p, wanted=wanted, setup=scenario.channel, cell=cell)
             out = {n: to_practical(n, v[r0 - a : r1 - a]) for n, v in si.items()}
             writer.put(r0, out)
             for n in summary:
@@ -239,6 +245,8 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
                         min(ranges[n][0], float(v.min())),
                         max(ranges[n][1], float(v.max())),
                     ]
+            if "solver_converged" in out:
+                counts["unconverged"] += int((out["solver_converged"] == 0).sum())
             if "backflow" in out:
                 counts["backflow"] += int(np.nansum(out["backflow"]))
                 counts["valid"] += int(np.isfinite(out["backflow"]).sum())
@@ -249,6 +257,7 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         bar.close()
         writer.finish()
         checks.finish()  # on early exit these stats are partial: enough to name the likely cause
+        cell_check.finish()
         thin.finish()
         for w in writers:
             w.close()
@@ -263,6 +272,7 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
             "backflow_cells": counts["backflow"] if "backflow" in wanted else None,
             "valid_cells": counts["valid"],
             "figure": figure,
+            "unconverged_cells": counts["unconverged"],
             "budget_fields": side_path if budget_fields is not None else None,
             "shape": [height, width],
             "strip_rows": rows,

@@ -11,7 +11,7 @@ from functools import lru_cache
 
 from .errors import CrustflowInputError
 
-__all__ = ["DIMENSIONS", "parse_quantity", "parse_vector"]
+__all__ = ["DIMENSIONS", "parse_quantity", "parse_vector", "unit_conversion", "parse_prefactor"]
 
 #: The kinds of quantity scenario keys take: pint dimensionality, SI unit, and an example for messages.
 DIMENSIONS: dict[str, tuple[str, str, str]] = {
@@ -20,6 +20,12 @@ DIMENSIONS: dict[str, tuple[str, str, str]] = {
     "viscosity": ("[mass] / [length] / [time]", "Pa*s", '"1e19 Pa*s"'),
     "velocity": ("[length] / [time]", "m/s", '"5 mm/yr"'),
     "acceleration": ("[length] / [time] ** 2", "m/s^2", '"9.81 m/s^2"'),
+    "temperature": ("[temperature]", "K", '"550 degC"'),
+    "heat_flow": ("[mass] / [time] ** 3", "W/m^2", '"65 mW/m^2"'),
+    "conductivity": ("[mass] * [length] / [time] ** 3 / [temperature]", "W/m/K", '"2.5 W/m/K"'),
+    "heat_production": ("[mass] / [length] / [time] ** 3", "W/m^3", '"1 uW/m^3"'),
+    "molar_energy": ("[mass] * [length] ** 2 / [time] ** 2 / [substance]", "J/mol", '"223 kJ/mol"'),
+    "strain_rate": ("1 / [time]", "1/s", '"1e-14 1/s"'),
 }
 
 
@@ -64,7 +70,11 @@ def parse_quantity(value: object, key: str, kind: str) -> float:
 
     ureg = _registry()
     try:
-        quantity = ureg.Quantity(value.strip())
+        number, _, unit = value.strip().partition(" ")
+        if kind == "temperature" and unit.strip():  # offset units (degC) need number and unit apart
+            quantity = ureg.Quantity(float(number), unit.strip())
+        else:
+            quantity = ureg.Quantity(value.strip())
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError) as exc:
         raise CrustflowInputError(
             f"{key} = {value!r} is not a number with units ({exc.__class__.__name__}); "
@@ -80,6 +90,52 @@ def parse_quantity(value: object, key: str, kind: str) -> float:
             f"such as {example}"
         )
     return float(quantity.to(si_unit).magnitude)
+
+
+def unit_conversion(units: object, key: str, kind: str) -> tuple[float, float]:
+    """Scale and offset that take values in ``units`` to SI: ``si = value * scale + offset``.
+
+    Parameters
+    ----------
+    units : str
+        Units of a grid's values, e.g. ``"km"`` or ``"degC"``.
+    key, kind
+        As for :func:`parse_quantity`.
+    """
+    dimensionality, si_unit, example = DIMENSIONS[kind]
+    if not isinstance(units, str) or not units.strip():
+        raise CrustflowInputError(f"{key}: units must be a string, e.g. units = {example.split()[-1]}")
+    import pint
+
+    ureg = _registry()
+    try:
+        zero = ureg.Quantity(0.0, units.strip())
+        one = ureg.Quantity(1.0, units.strip())
+    except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
+        raise CrustflowInputError(f"{key}: units {units!r} are not understood; write e.g. "
+                                  f"units = {example.split()[-1]}") from None
+    if not one.check(dimensionality):
+        raise CrustflowInputError(f"{key}: units {units!r} are not a {kind}; write e.g. "
+                                  f"units = {example.split()[-1]}")
+    offset = float(zero.to(si_unit).magnitude)
+    return float(one.to(si_unit).magnitude) - offset, offset
+
+
+def parse_prefactor(value: object, key: str, stress_exponent: float) -> float:
+    """A power-law prefactor such as ``"4e-34 Pa^-3 s^-1"`` in SI, Pa^-n s^-1."""
+    example = f'"4e-34 Pa^-{stress_exponent:g} s^-1"'
+    if not isinstance(value, str):
+        raise CrustflowInputError(f"{key} must be a string with units, e.g. {key} = {example}")
+    import pint
+
+    ureg = _registry()
+    try:
+        quantity = ureg.Quantity(value.strip())
+        target = ureg.Quantity(1.0, "Pa") ** (-stress_exponent) / ureg.Quantity(1.0, "s")
+        return float((quantity / target).to("dimensionless").magnitude)
+    except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
+        raise CrustflowInputError(f"{key} = {value!r} is not in units of stress^-n time^-1 with "
+                                  f"n = {stress_exponent:g}; write e.g. {key} = {example}") from None
 
 
 def parse_vector(value: object, key: str, kind: str) -> tuple[float, float]:
