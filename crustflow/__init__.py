@@ -27,6 +27,7 @@ __all__ = [
     "section_budgets",
     "region_budgets",
     "samples",
+    "velocity_profiles",
 ]
 
 
@@ -40,6 +41,10 @@ def __getattr__(name: str):
         from . import budgets
 
         return getattr(budgets, name)
+    if name == "velocity_profiles":
+        from .profiles import velocity_profiles
+
+        return velocity_profiles
     if name == "samples":
         import importlib
 
