@@ -158,7 +158,7 @@ def budget_map(
     Each section carries an arrow at its middle pointing to its positive (right-hand) side and a
     label with its volume flux; each region a label with its net inflow.
     """
-    from .plot import arrow_stride
+    from .plot import arrow_stride, magnitude_image
 
     plt = _pyplot()
     geographic = bool(fields.rio.crs is not None and fields.rio.crs.is_geographic)
@@ -168,16 +168,7 @@ def budget_map(
     qn = np.asarray(fields["flux_north"].transpose("y", "x").values, dtype=float)
     mag = np.hypot(qe, qn)
     fig, ax = plt.subplots(figsize=(8, 6.5), layout="constrained")
-    dx, dy = abs(x[1] - x[0]), abs(y[1] - y[0])
-    extent = (x.min() - dx / 2, x.max() + dx / 2, y.min() - dy / 2, y.max() + dy / 2)
-    image = ax.imshow(
-        mag,
-        extent=extent,
-        origin="upper" if y[0] > y[-1] else "lower",
-        cmap="cividis",
-        interpolation="nearest",
-    )
-    fig.colorbar(image, ax=ax, shrink=0.85).set_label("channel flux per unit width (m²/yr)")
+    _, extent = magnitude_image(fig, ax, x, y, mag)
     step = arrow_stride(mag.shape)
     sl = (slice(step // 2, None, step), slice(step // 2, None, step))
     norm = mag[sl]

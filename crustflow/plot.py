@@ -12,7 +12,7 @@ import numpy as np
 import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
-__all__ = ["flux_map", "arrow_stride"]
+__all__ = ["flux_map", "arrow_stride", "magnitude_image"]
 
 #: Share of the figure's height kept free at the foot for the caution line.
 FOOT_SHARE = 0.05
@@ -24,6 +24,33 @@ ARROWS_ACROSS = 25
 def arrow_stride(shape: tuple[int, int], across: int = ARROWS_ACROSS) -> int:
     """Stride in cells between arrows so that about ``across`` arrows span the wider side."""
     return max(1, int(round(max(shape) / across)))
+
+
+def magnitude_image(fig, ax, x, y, magnitude, label="channel flux per unit width (m²/yr)"):
+    """Draw a map of flux magnitude (cividis, cell-exact extent) with its colour bar.
+
+    Parameters
+    ----------
+    fig, ax
+        Matplotlib figure and axes.
+    x, y : ndarray
+        Cell-centre coordinates in the units of the axes (km or degrees).
+    magnitude : ndarray
+        Values on (y, x).
+    label : str
+        Colour bar label with units.
+
+    Returns
+    -------
+    tuple
+        The image and the map extent (left, right, bottom, top).
+    """
+    dx, dy = abs(x[1] - x[0]), abs(y[1] - y[0])
+    extent = (x.min() - dx / 2, x.max() + dx / 2, y.min() - dy / 2, y.max() + dy / 2)
+    image = ax.imshow(magnitude, extent=extent, origin="upper" if y[0] > y[-1] else "lower",
+                      cmap="cividis", interpolation="nearest")
+    fig.colorbar(image, ax=ax, shrink=0.85).set_label(label)
+    return image, extent
 
 
 def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi: int = 150) -> Path:
@@ -59,21 +86,7 @@ def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi:
     y = ds.y.values * scale
     mag = ds["flux_magnitude"].values
     fig, ax = plt.subplots(figsize=(8, 6.5), layout="constrained")
-    dx, dy = abs(x[1] - x[0]), abs(y[1] - y[0])
-    extent = (x.min() - dx / 2, x.max() + dx / 2, y.min() - dy / 2, y.max() + dy / 2)
-    image = ax.imshow(
-        mag,
-        extent=extent,
-        origin="upper" if y[0] > y[-1] else "lower",
-        cmap="cividis",
-        interpolation="nearest",
-    )
-    bar = fig.colorbar(image, ax=ax, shrink=0.85)
-    bar.set_label(
-        f"channel flux per unit width ({ds['flux_magnitude'].attrs.get('units', '')})".replace(
-            "m2 yr-1", "m²/yr"
-        )
-    )
+    magnitude_image(fig, ax, x, y, mag)
     step = arrow_stride(mag.shape)
     sl = (slice(step // 2, None, step), slice(step // 2, None, step))
     qe, qn = ds["flux_east"].values[sl], ds["flux_north"].values[sl]
