@@ -166,10 +166,16 @@ def parse_channel(raw: dict, base: Path) -> tuple[float | None, float | None, Ch
     if rheology not in RHEOLOGIES:
         raise CrustflowInputError(f"channel.rheology = {rheology!r} is not one of "
                                   f"{', '.join(RHEOLOGIES)}")
-    if "thickness" not in raw:
-        raise CrustflowInputError('the scenario needs [channel] thickness = "15 km" (or a grid)')
-    thickness = _grid_or_value(raw["thickness"], "channel.thickness", "length", base,
-                               "channel_thickness", grids)
+    placement = raw.get("placement", "crust-base")
+    thickness = None
+    if placement == "crust-base":
+        if "thickness" not in raw:
+            raise CrustflowInputError('the scenario needs [channel] thickness = "15 km" (or a grid)')
+        thickness = _grid_or_value(raw["thickness"], "channel.thickness", "length", base,
+                                   "channel_thickness", grids)
+    elif "thickness" in raw:
+        raise CrustflowInputError(f"channel.thickness is not used with placement = {placement!r} "
+                                  "(the depths give it); remove it")
     viscosity = None
     if rheology == "newtonian":
         if "viscosity" not in raw:

@@ -158,6 +158,13 @@ def _summary(result: dict) -> None:
         unit = VARIABLES[name].units
         text = f"{lo:.3g} to {hi:.3g} {unit}" if lo <= hi else "no valid cells"
         print(f"  {labels[name]:<16} {text}")
+    if result.get("excluded_cells"):
+        print(f"  note: {result['excluded_cells']} cells excluded: the placed channel has no "
+              "thickness there or leaves the crust")
+    if result.get("thin_channel_cells"):
+        print(f"  WARNING: in {result['thin_channel_cells']} cells the load varies on wavelengths "
+              "shorter than 3 channel thicknesses, where the thin-channel model fails "
+              "(thin_channel_warning = 1)")
     if result.get("unconverged_cells"):
         print(f"  WARNING: the per-cell solver did not converge in {result['unconverged_cells']} "
               "cells (solver_converged = 0 there; their values are the last iterate)")
@@ -187,7 +194,8 @@ def _check(scenario_path: Path) -> int:
             H = arrays["topography"]
             T = crust_thickness_of(H, p, crust_thickness=arrays.get("crust_thickness"),
                                    moho_depth=arrays.get("moho_depth"))
-            cell = {k: g.to_si(arrays[k]) for k, g in scenario.channel.grids.items()}
+            cell = {k: g.to_si(arrays[k]) for k, g in
+                    {**scenario.channel.grids, **scenario.load.grids}.items()}
             cell_check.update(cell)
             thin.update(np.where(np.isfinite(H), T, np.nan), cell.get("channel_thickness"))
         checks.finish()
@@ -360,7 +368,8 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument(
         "--scenario",
         default="plateau",
-        help="which sample scenario: plateau (projected, default) or plateau-lonlat",
+        help="which sample scenario: plateau (projected, default), plateau-lonlat, or wedge "
+        "(a viscous salt layer under a prograding sediment wedge)",
     )
     demo.add_argument("--quiet", action="store_true", help="print nothing but errors")
     budget = sub.add_parser(

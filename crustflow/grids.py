@@ -287,7 +287,7 @@ def open_sources(scenario) -> dict[str, GridSource]:
                   "temperature_top": "channel.temperature.top",
                   "temperature_base": "channel.temperature.base",
                   "surface_heat_flow": "channel.temperature.surface_heat_flow"}
-        for key, grid in scenario.channel.grids.items():
+        for key, grid in {**scenario.channel.grids, **scenario.load.grids}.items():
             sources[key] = GridSource(grid.path, labels.get(key, key), crs=scenario.crs, target=topo)
     except BaseException:
         close_sources(sources)
@@ -354,7 +354,7 @@ def read_inputs(scenario) -> InputGrids:
         for key in ("crust_thickness", "moho_depth"):
             if key in arrays:
                 setattr(out, key, as_dataarray(arrays[key], sources["topography"], key))
-        for key, grid in scenario.channel.grids.items():
+        for key, grid in {**scenario.channel.grids, **scenario.load.grids}.items():
             out.cell[key] = as_dataarray(grid.to_si(arrays[key]), sources["topography"], key)
         return out
     finally:

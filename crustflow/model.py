@@ -26,6 +26,7 @@ from .fields import (  # noqa: F401  (re-exported: the public names live here to
     fields_si,
     to_practical,
     variable_attrs,
+    whole_grid_load,
 )
 from .maps import grid_geometry
 from .scenario import ModelParameters, Scenario
@@ -61,6 +62,7 @@ def compute_fields(
     crust_thickness: xr.DataArray | None = None,
     moho_depth: xr.DataArray | None = None,
     channel=None,
+    load_setup=None,
     cell: dict | None = None,
     stage: Callable[[str], None] | None = None,
 ) -> xr.Dataset:
@@ -78,6 +80,8 @@ def compute_fields(
         ``parameters.reference_thickness``.
     channel : crustflow.channel_setup.ChannelSetup, optional
         Rheology (default: Newtonian with ``parameters.viscosity``).
+    load_setup : crustflow.load_setup.LoadSetup, optional
+        Roof layers, density grids, channel placement and load filters (default: none).
     cell : dict of xarray.DataArray, optional
         Parameter grids on the topography grid's cells, SI: ``channel_thickness`` (m),
         ``viscosity`` (Pa s), ``temperature_top``/``temperature_base`` (K), ``surface_heat_flow``
@@ -139,7 +143,15 @@ def compute_fields(
     check = ThinCrustCheck(p.channel_thickness)
     check.update(np.where(np.isfinite(H), T, np.nan), cell_si.get("channel_thickness"))
     check.finish()
-    si = fields_si(H, T, geom, p, setup=channel, cell=cell_si)
+    p_filtered, warning = whole_grid_load(H, T, geom, p, load_setup=load_setup, cell=cell_si)
+    diagnostics: dict = {}
+    si = fields_si(H, T, geom, p, setup=channel, cell=cell_si, load_setup=load_setup,
+                   p_top_filtered=p_filtered, thin_channel=warning, diagnostics=diagnostics)
+    from .load_setup import ColumnCheck
+
+    column = ColumnCheck()
+    column.update(diagnostics.get("roof_bad"), 0)
+    column.finish()
     data_vars = {
         name: (("y", "x"), to_practical(name, si[name]), variable_attrs(name)) for name in VARIABLES
     }
@@ -199,6 +211,7 @@ def solve(
         crust_thickness=grids.crust_thickness,
         moho_depth=grids.moho_depth,
         channel=scenario.channel,
+        load_setup=scenario.load,
         cell=grids.cell,
         stage=note,
     )

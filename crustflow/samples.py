@@ -26,7 +26,7 @@ __all__ = [
 ]
 
 #: Sample scenario folders under sample_grids/.
-SAMPLE_NAMES = ("plateau", "plateau-lonlat")
+SAMPLE_NAMES = ("plateau", "plateau-lonlat", "wedge")
 
 #: Projected frame of the invented region (UTM zone 25N over the open Atlantic; a frame only).
 SAMPLE_CRS = "EPSG:32625"
@@ -173,6 +173,9 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
         SCENARIO_TEXT.format(suffix=", lon/lat grid", features="../plateau/")
     )
     written.append(out / "scenario.toml")
+    from .wedge_sample import write_wedge_sample
+
+    written.append(write_wedge_sample(folder / "wedge"))
     return written
 
 

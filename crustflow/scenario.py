@@ -16,6 +16,7 @@ from typing import Any
 from . import constants
 from .channel_setup import ChannelSetup, parse_channel
 from .errors import CrustflowInputError
+from .load_setup import LoadSetup, parse_load
 from .units import parse_quantity, parse_vector
 
 __all__ = ["ModelParameters", "Scenario", "load_scenario", "scenario_from_dict", "FORMATS"]
@@ -35,7 +36,7 @@ _SCHEMA: dict[str, Any] = {
         "crs": "text",
     },
     "densities": {
-        "crust": "density",
+        "crust": "density|grid",
         "mantle": "density",
         "water": "density",
         "channel": "density",
@@ -46,6 +47,9 @@ _SCHEMA: dict[str, Any] = {
         "rheology": "text",
         "stress_exponent": "number",
         "prefactor": "text",
+        "placement": "text",
+        "top_depth": "length|grid",
+        "base_depth": "length|grid",
         "flow_law": "table",  # checked by crustflow.channel_setup
         "temperature": "table",  # checked by crustflow.channel_setup
     },
@@ -53,6 +57,14 @@ _SCHEMA: dict[str, Any] = {
     "constants": {"gravity": "acceleration"},
     "output": {"variables": "list", "formats": "list"},
     "budgets": {"sections": "path", "regions": "path"},
+    "roof": {"layers": "list"},  # checked by crustflow.load_setup
+    "load": {
+        "smoothing": "length",
+        "elastic_thickness": "length",
+        "youngs_modulus": "pressure",
+        "poissons_ratio": "number",
+        "density_contrast": "density",
+    },
 }
 
 
@@ -152,6 +164,7 @@ class Scenario:
     sections: Path | None = None
     regions: Path | None = None
     channel: ChannelSetup = field(default_factory=ChannelSetup)
+    load: LoadSetup = field(default_factory=LoadSetup)
 
     def resolved(self) -> dict:
         """The scenario resolved to SI units, as a JSON-ready dict."""
@@ -165,6 +178,7 @@ class Scenario:
             },
             "parameters_SI": asdict(self.parameters),
             "channel": self.channel.describe(),
+            "load": self.load.describe(),
             "budgets": {
                 "sections": str(self.sections) if self.sections else None,
                 "regions": str(self.regions) if self.regions else None,
@@ -180,7 +194,7 @@ class Scenario:
     def input_paths(self) -> list[Path]:
         """Every input file the scenario names."""
         paths = (self.topography, self.crust_thickness, self.moho_depth, self.sections, self.regions)
-        grids = tuple(g.path for g in self.channel.grids.values())
+        grids = tuple(g.path for g in (*self.channel.grids.values(), *self.load.grids.values()))
         return [p for p in paths + grids if p is not None]
 
 
@@ -251,6 +265,7 @@ def scenario_from_dict(
     dens = raw.get("densities", {})
     chan = raw.get("channel", {})
     thickness, viscosity, channel_setup = parse_channel(chan, base)
+    load_setup = parse_load(raw, chan, base)
     reference = None
     if "reference_thickness" in grids:
         if "crust_thickness" in grids or "moho_depth" in grids:
@@ -276,7 +291,7 @@ def scenario_from_dict(
         ("water", "rho_water"),
         ("channel", "rho_channel"),
     ):
-        if key in dens:
+        if key in dens and not (key == "crust" and isinstance(dens[key], dict)):
             kw[name] = parse_quantity(dens[key], f"densities.{key}", "density")
     if "gravity" in raw.get("constants", {}):
         kw["gravity"] = parse_quantity(
@@ -321,6 +336,7 @@ def scenario_from_dict(
     sections = _path(budgets["sections"], "budgets.sections", base) if "sections" in budgets else None
     regions = _path(budgets["regions"], "budgets.regions", base) if "regions" in budgets else None
     return Scenario(
+        load=load_setup,
         channel=channel_setup,
         sections=sections,
         regions=regions,

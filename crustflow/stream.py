@@ -26,8 +26,10 @@ from .fields import (
     fields_si,
     to_practical,
     variable_attrs,
+    whole_grid_load,
 )
 from .grids import GridChecks, close_sources, open_sources, provenance
+from .load_setup import ColumnCheck
 from .maps import grid_geometry
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
@@ -214,6 +216,23 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         writer = _BackgroundWriter(write)
         bar = tqdm(total=height, unit=" rows", desc="crustflow", leave=False, file=sys.stderr,
                    disable=not progress or height <= rows, dynamic_ncols=True)
+        ls = scenario.load
+        whole_p = whole_warning = None
+        if ls.filtered or "thin_channel_warning" in wanted:
+            note("whole-grid load")
+            full = {key: src.read() for key, src in sources.items()}
+            full_cell = {k: g.to_si(full[k]) for k, g in
+                         {**scenario.channel.grids, **ls.grids}.items()}
+            H_full = full["topography"]
+            T_full = crust_thickness_of(H_full, p, crust_thickness=full.get("crust_thickness"),
+                                        moho_depth=full.get("moho_depth"))
+            whole_p, whole_warning = whole_grid_load(
+                H_full, T_full, grid_geometry(x, y, topo.crs, spacing=(t.a, t.e)), p,
+                load_setup=ls, cell=full_cell, filtered=ls.filtered,
+                mask="thin_channel_warning" in wanted)
+            del full, full_cell, H_full, T_full
+            note("compute and write")
+        column = ColumnCheck()
         for r0 in range(0, height, rows):
             bar.update(min(height, r0 + rows) - r0)
             r1 = min(height, r0 + rows)
@@ -227,7 +246,8 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
                 crust_thickness=arrays.get("crust_thickness"),
                 moho_depth=arrays.get("moho_depth"),
             )
-            cell = {k: g.to_si(arrays[k]) for k, g in scenario.channel.grids.items()}
+            cell = {k: g.to_si(arrays[k]) for k, g in
+                    {**scenario.channel.grids, **scenario.load.grids}.items()}
             cell_check.update({k: v[r0 - a : r1 - a] for k, v in cell.items()})
             h_cell = cell.get("channel_thickness")
             thin.update(np.where(np.isfinite(H), T, np.nan)[r0 - a : r1 - a],
@@ -235,7 +255,17 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
             if thin.cells or cell_check.bad:
                 break
             geom = grid_geometry(x, y[a:b], topo.crs, spacing=(t.a, t.e))
-            si = fields_si(H, T, geom, p, wanted=wanted, setup=scenario.channel, cell=cell)
+            diagnostics: dict = {}
+            si = fields_si(H, T, geom, p, wanted=wanted, setup=scenario.channel, cell=cell,
+                           load_setup=ls, diagnostics=diagnostics,
+                           p_top_filtered=None if whole_p is None else whole_p[a:b],
+                           thin_channel=None if whole_warning is None else whole_warning[a:b])
+            own = slice(r0 - a, r1 - a)
+            roof_bad, excluded = diagnostics.get("roof_bad"), diagnostics.get("excluded")
+            column.update(None if roof_bad is None else roof_bad[own],
+                          0 if excluded is None else int(excluded[own].sum()))
+            if column.roof_cells:
+                break
             out = {n: to_practical(n, v[r0 - a : r1 - a]) for n, v in si.items()}
             writer.put(r0, out)
             for n in summary:
@@ -258,6 +288,7 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         writer.finish()
         checks.finish()  # on early exit these stats are partial: enough to name the likely cause
         cell_check.finish()
+        column.finish()
         thin.finish()
         for w in writers:
             w.close()
@@ -273,6 +304,9 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
             "valid_cells": counts["valid"],
             "figure": figure,
             "unconverged_cells": counts["unconverged"],
+            "excluded_cells": column.excluded,
+            "thin_channel_cells": None if whole_warning is None
+            else int(np.nansum(whole_warning)),
             "budget_fields": side_path if budget_fields is not None else None,
             "shape": [height, width],
             "strip_rows": rows,

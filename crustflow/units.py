@@ -26,6 +26,7 @@ DIMENSIONS: dict[str, tuple[str, str, str]] = {
     "heat_production": ("[mass] / [length] / [time] ** 3", "W/m^3", '"1 uW/m^3"'),
     "molar_energy": ("[mass] * [length] ** 2 / [time] ** 2 / [substance]", "J/mol", '"223 kJ/mol"'),
     "strain_rate": ("1 / [time]", "1/s", '"1e-14 1/s"'),
+    "pressure": ("[mass] / [length] / [time] ** 2", "Pa", '"100 GPa"'),
 }
 
 
