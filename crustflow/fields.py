@@ -250,8 +250,9 @@ def whole_grid_load(elevation, crust_thickness, geometry, parameters: ModelParam
     ``rho_c g H`` for a uniform crust in Airy balance), and the filtered load is
     ``phi_f + rho_ch g z_top``. Smoothing (a Gaussian of standard deviation ``sigma``) is applied
     first, then the thin elastic crust: the load reaches the channel scaled at wavenumber k by
-    ``1 / (1 + D k^4 / (drho g))`` with ``D = E Te^3 / (12 (1 - nu^2))`` and, by default, ``drho = rho_mantle - rho_crust``
-    (compensation at the Moho; Turcotte & Schubert 2002, chapter 3). Both act on the whole grid.
+    ``1 / (1 + D k^4 / (drho g))`` with ``D = E Te^3 / (12 (1 - nu^2))`` and, by default,
+    ``drho = rho_mantle - rho_crust`` (compensation at the Moho; Turcotte & Schubert 2002,
+    chapter 3). Both act on the whole grid.
     """
     from .column import short_wavelength_mask
     from .flexure import flexural_filter, gaussian_smoothing
