@@ -92,9 +92,16 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
             note("draw figure")
             flux_map(result["figure"], tmp / "flux_map.png", title=scenario.title)
             written.append("flux_map.png")
+        ensemble = None
+        if scenario.ensemble is not None:
+            note("ensemble")
+            ensemble = _run_ensemble(scenario, tmp, quiet)
+            written += ensemble["written"]
         note("write manifest")
         manifest = base_manifest(scenario, timings, result["provenance"])
         manifest["grid"] = {"shape": result["shape"], "strip_rows": result["strip_rows"]}
+        if ensemble is not None:
+            manifest["ensemble"] = ensemble["manifest"]
         write_manifest(tmp, manifest, written)
         progress.finish()
     if not quiet:
@@ -314,6 +321,35 @@ def _profile(scenario_path: Path, at, points, crs, out: Path, quiet: bool) -> in
     return 0
 
 
+def _run_ensemble(scenario, folder: Path, quiet: bool) -> dict:
+    """Run the scenario's ensemble into ``folder``; return written files and manifest entries."""
+    from .ensemble import run_ensemble
+
+    summary = run_ensemble(scenario, scenario.ensemble, folder,
+                           progress=not quiet and sys.stderr.isatty())
+    return {"written": list(summary.get("written", [])), "manifest": summary["manifest"]}
+
+
+def _ensemble(scenario_path: Path, out: Path, quiet: bool) -> int:
+    from .export import atomic_folder, base_manifest, write_manifest
+    from .scenario import load_scenario
+
+    scenario = load_scenario(scenario_path)
+    if scenario.ensemble is None:
+        raise CrustflowInputError("the scenario has no [ensemble] table; add one with members, seed "
+                                  "and [ensemble.vary] (see the README)")
+    began = time.perf_counter()
+    with atomic_folder(out, scenario.input_paths) as tmp:
+        ensemble = _run_ensemble(scenario, tmp, quiet)
+        manifest = base_manifest(scenario, {"ensemble": time.perf_counter() - began})
+        manifest["ensemble"] = ensemble["manifest"]
+        write_manifest(tmp, manifest, ensemble["written"])
+    if not quiet:
+        print(f"crustflow: wrote {out.expanduser().resolve()} in "
+              f"{time.perf_counter() - began:.1f} s", file=sys.stderr)
+    return 0
+
+
 def _demo(out: Path, quiet: bool, scenario_name: str) -> int:
     from .samples import demo_scenario
 
@@ -402,6 +438,16 @@ def build_parser() -> argparse.ArgumentParser:
     profile.add_argument("--out", type=Path, default=Path("crustflow_profiles"),
                          help="output folder (default: ./crustflow_profiles)")
     profile.add_argument("--quiet", action="store_true", help="print only the table and errors")
+    ensemble = sub.add_parser(
+        "ensemble", help="percentile maps and budget distributions over uncertain parameters",
+        description="Sample the [ensemble] table's distributions (viscosity, thickness, densities, "
+        "wall velocity...) and write percentile, mean, spread and exceedance maps (ensemble.nc and "
+        "GeoTIFFs), member and budget tables and figures. The same runs with `crustflow run` when "
+        "the scenario has an [ensemble] table.\n\n" + CAUTION_HELP, **common)
+    ensemble.add_argument("scenario", type=Path, help="scenario file (TOML) with [ensemble]")
+    ensemble.add_argument("--out", type=Path, default=Path("crustflow_ensemble"),
+                          help="output folder (default: ./crustflow_ensemble)")
+    ensemble.add_argument("--quiet", action="store_true", help="print nothing but errors")
     check = sub.add_parser(
         "check",
         help="validate a scenario and its grids without writing anything",
@@ -441,6 +487,8 @@ def _main(argv: list[str] | None) -> int:
                            args.quiet)
         if args.command == "profile":
             return _profile(args.scenario, args.at, args.points, args.crs, args.out, args.quiet)
+        if args.command == "ensemble":
+            return _ensemble(args.scenario, args.out, args.quiet)
         if args.command == "check":
             return _check(args.scenario)
     except CrustflowInputError as exc:

@@ -58,16 +58,30 @@ from .maps import divergence, gradient, grid_geometry
 from .scenario import ModelParameters
 from .units import parse_quantity
 
-__all__ = ["Distribution", "VectorDistribution", "EnsembleSpec", "parse_ensemble",
-           "sample_members", "run_ensemble", "fast_fields", "fast_path_obstacle",
-           "sorted_percentiles", "SAMPLING", "DISTRIBUTIONS", "VARIABLE_KEYS", "MEMORY_BYTES"]
+__all__ = [
+    "Distribution",
+    "VectorDistribution",
+    "EnsembleSpec",
+    "parse_ensemble",
+    "sample_members",
+    "run_ensemble",
+    "fast_fields",
+    "fast_path_obstacle",
+    "SAMPLING",
+    "DISTRIBUTIONS",
+    "VARIABLE_KEYS",
+    "MEMORY_BYTES",
+]
 
 #: Sampling designs ``[ensemble] sampling`` may name.
 SAMPLING = ("latin-hypercube", "random")
 
 #: Distributions and the keys each needs and allows (besides ``distribution``).
-DISTRIBUTIONS = {"uniform": (("low", "high"), ()), "log-uniform": (("low", "high"), ()),
-                 "normal": (("mean", "sd"), ("min", "max"))}
+DISTRIBUTIONS = {
+    "uniform": (("low", "high"), ()),
+    "log-uniform": (("low", "high"), ()),
+    "normal": (("mean", "sd"), ("min", "max")),
+}
 
 #: Percentiles and report variables when ``[ensemble.report]`` does not give them.
 DEFAULT_PERCENTILES = (5.0, 50.0, 95.0)
@@ -79,13 +93,17 @@ FIGURE_PERCENTILES = (5.0, 50.0, 95.0)
 #: Variables without a meaningful percentile: directions wrap around at north.
 CIRCULAR = ("flux_azimuth",)
 
+#: Variables that need the whole grid at once (crustflow.fields.whole_grid_load), not available
+#: strip by strip for every member.
+WHOLE_GRID = ("thin_channel_warning",)
+
 #: Working memory for the member-by-cell arrays, bytes. Project choice: 1 GiB keeps a 1000-member
 #: run of a 1000 x 1000 grid far below 4 GB with chunks large enough to keep numpy busy.
 MEMORY_BYTES = 1 << 30
 
-#: Member-by-cell float64 arrays alive at once on the fast path (named buffers, the float32 sort copy,
-#: temporaries of the standard deviation), and with the full one-cell solution (peak speed, drag,
-#: backflow), which makes about thirty temporaries. Measured with tracemalloc; rounded up.
+#: Member-by-cell float64 arrays alive at once on the fast path (named buffers, the float32 sort
+#: copy, a comparison mask), and with the full one-cell solution (peak speed, drag, backflow). Peak
+#: traced by tracemalloc over one chunk of 9,000 cells and 200 members: 5.8 and 36 arrays; rounded up.
 FAST_ARRAYS, FULL_ARRAYS = 8, 40
 
 #: Open interval the uniform deviates are clipped to before an inverse CDF (the normal's is infinite
@@ -110,8 +128,9 @@ VARIABLE_KEYS: dict[str, _Key] = {
     "densities.mantle": _Key(("rho_mantle",), "density", "kg_per_m3", 1.0, "positive"),
     "densities.water": _Key(("rho_water",), "density", "kg_per_m3", 1.0, "non-negative"),
     "densities.channel": _Key(("rho_channel",), "density", "kg_per_m3", 1.0, "positive"),
-    "walls.upper_velocity": _Key(("wall_east", "wall_north"), "velocity", "mm_per_yr",
-                                 1e3 * SECONDS_PER_YEAR, None),
+    "walls.upper_velocity": _Key(
+        ("wall_east", "wall_north"), "velocity", "mm_per_yr", 1e3 * SECONDS_PER_YEAR, None
+    ),
     "constants.gravity": _Key(("gravity",), "acceleration", "m_per_s2", 1.0, "positive"),
     "grids.reference_thickness": _Key(("reference_thickness",), "length", "km", 1e-3, "positive"),
 }
@@ -266,20 +285,29 @@ class EnsembleSpec:
         for key, dist in self.vary.items():
             spec = VARIABLE_KEYS[key]
             if isinstance(dist, VectorDistribution):
-                dims += [_Dimension(key, spec.fields[0], "east", dist.east),
-                         _Dimension(key, spec.fields[1], "north", dist.north)]
+                dims += [
+                    _Dimension(key, spec.fields[0], "east", dist.east),
+                    _Dimension(key, spec.fields[1], "north", dist.north),
+                ]
             else:
                 dims.append(_Dimension(key, spec.fields[0], None, dist))
         return dims
 
     def describe(self) -> dict:
         """The spec as a JSON-ready dict (SI), for run manifests."""
-        return {"members": self.members, "seed": self.seed, "sampling": self.sampling,
-                "vary": {k: d.describe() for k, d in self.vary.items()},
-                "percentiles": list(self.percentiles), "variables": list(self.variables),
-                "exceedance": {"variable": self.exceedance_variable,
-                               "thresholds_SI": list(self.thresholds)},
-                "percentile_method": report.PERCENTILE_METHOD}
+        return {
+            "members": self.members,
+            "seed": self.seed,
+            "sampling": self.sampling,
+            "vary": {k: d.describe() for k, d in self.vary.items()},
+            "percentiles": list(self.percentiles),
+            "variables": list(self.variables),
+            "exceedance": {
+                "variable": self.exceedance_variable,
+                "thresholds_SI": list(self.thresholds),
+            },
+            "percentile_method": report.PERCENTILE_METHOD,
+        }
 
 
 # ----------------------------------------------------------------------------------------------
@@ -355,7 +383,9 @@ def parse_ensemble(raw: dict, parameters: ModelParameters) -> EnsembleSpec:
         raise CrustflowInputError("[ensemble] must be a table (an [ensemble] section)")
     _check_keys(raw, ("members", "seed", "sampling", "vary", "report"), "[ensemble]")
     if "members" not in raw:
-        raise CrustflowInputError("[ensemble] needs members = N (an integer of at least 2, e.g. 1000)")
+        raise CrustflowInputError(
+            "[ensemble] needs members = N (an integer of at least 2, e.g. 1000)"
+        )
     members = _integer(raw["members"], "ensemble.members", "members = 1000", 2)
     if "seed" not in raw:
         raise CrustflowInputError(
@@ -386,34 +416,50 @@ def parse_ensemble(raw: dict, parameters: ModelParameters) -> EnsembleSpec:
         raise CrustflowInputError(
             'ensemble.report.variables must be a non-empty list of names, e.g. ["uplift_rate"]'
         )
-    variables = tuple(dict.fromkeys(_report_variable(v, "ensemble.report.variables")
-                                    for v in variables))
+    variables = tuple(
+        dict.fromkeys(_report_variable(v, "ensemble.report.variables") for v in variables)
+    )
     exceedance, thresholds = None, ()
     if "exceedance" in rep:
         exceedance, thresholds = _parse_exceedance(rep["exceedance"])
-    return EnsembleSpec(members=members, seed=seed, sampling=sampling, vary=vary,
-                        percentiles=percentiles, variables=variables,
-                        exceedance_variable=exceedance, thresholds=thresholds, written=raw)
+    return EnsembleSpec(
+        members=members,
+        seed=seed,
+        sampling=sampling,
+        vary=vary,
+        percentiles=percentiles,
+        variables=variables,
+        exceedance_variable=exceedance,
+        thresholds=thresholds,
+        written=raw,
+    )
 
 
 def _parse_varied(key: str, table, parameters: ModelParameters):
     if key not in VARIABLE_KEYS:
-        raise _unknown(key, VARIABLE_KEYS, "[ensemble.vary]",
-                       f"; the keys that can vary: {', '.join(VARIABLE_KEYS)}")
+        raise _unknown(
+            key,
+            VARIABLE_KEYS,
+            "[ensemble.vary]",
+            f"; the keys that can vary: {', '.join(VARIABLE_KEYS)}",
+        )
     spec = VARIABLE_KEYS[key]
     where = f'ensemble.vary."{key}"'
     if any(getattr(parameters, f) is None for f in spec.fields):
-        why = ("the scenario has a crust thickness or Moho grid (it is for the Airy case only)"
-               if key == "grids.reference_thickness"
-               else "the scenario gives it as a grid or its rheology does not use it")
+        why = (
+            "the scenario has a crust thickness or Moho grid (it is for the Airy case only)"
+            if key == "grids.reference_thickness"
+            else "the scenario gives it as a grid or its rheology does not use it"
+        )
         raise CrustflowInputError(f"{where}: {key} cannot vary as a scalar: {why}; remove it")
     if not isinstance(table, dict):
         raise CrustflowInputError(
             f'{where} must be a table, e.g. "{key}" = {{ distribution = "uniform", low = "...", '
             'high = "..." }'
         )
-    _check_keys(table, ("distribution",) + tuple(k for n, o in DISTRIBUTIONS.values()
-                                                 for k in n + o), where)
+    _check_keys(
+        table, ("distribution",) + tuple(k for n, o in DISTRIBUTIONS.values() for k in n + o), where
+    )
     kind = table.get("distribution")
     if kind not in DISTRIBUTIONS:
         raise CrustflowInputError(
@@ -424,7 +470,7 @@ def _parse_varied(key: str, table, parameters: ModelParameters):
     for name in needs:
         if name not in table:
             raise CrustflowInputError(
-                f"{where}: a {kind} distribution needs {' and '.join(needs)}; add {name} = \"...\""
+                f'{where}: a {kind} distribution needs {" and ".join(needs)}; add {name} = "..."'
             )
     for name in table:
         if name != "distribution" and name not in needs + allows:
@@ -441,25 +487,28 @@ def _parse_varied(key: str, table, parameters: ModelParameters):
                     continue
                 if not isinstance(value, list) or len(value) != 2:
                     raise CrustflowInputError(
-                        f'{where}.{name} must be a list of two values with units (east, north), '
+                        f"{where}.{name} must be a list of two values with units (east, north), "
                         f'e.g. {name} = ["5 mm/yr", "0 mm/yr"]'
                     )
                 values[name] = value[i]
             parts.append(_distribution(kind, values, where, f"[{i}] ({comp})", spec))
         return VectorDistribution(*parts)
-    return _distribution(kind, {k: v for k, v in table.items() if k != "distribution"}, where,
-                         "", spec)
+    return _distribution(
+        kind, {k: v for k, v in table.items() if k != "distribution"}, where, "", spec
+    )
 
 
 def _distribution(kind: str, values: dict, where: str, part: str, spec: _Key) -> Distribution:
-    si = {name: parse_quantity(value, f"{where}.{name}{part}", spec.kind)
-          for name, value in values.items()}
+    si = {
+        name: parse_quantity(value, f"{where}.{name}{part}", spec.kind)
+        for name, value in values.items()
+    }
     head = f"{where}{part}"
     if kind in ("uniform", "log-uniform") and not si["low"] < si["high"]:
         raise CrustflowInputError(f"{head}: low must be less than high; swap or fix them")
     if kind == "normal":
         if not si["sd"] > 0:
-            raise CrustflowInputError(f"{head}: sd must be positive; give e.g. sd = \"...\"")
+            raise CrustflowInputError(f'{head}: sd must be positive; give e.g. sd = "..."')
         if "min" in si and "max" in si and not si["min"] < si["max"]:
             raise CrustflowInputError(f"{head}: min must be less than max; swap or fix them")
     lowest = si.get("low") if kind != "normal" else si.get("min")
@@ -473,7 +522,7 @@ def _distribution(kind: str, values: dict, where: str, part: str, spec: _Key) ->
         if lowest is None:
             raise CrustflowInputError(
                 f"{head}: a normal distribution can give values that are not {word} (min not "
-                f"set); add a lower truncation bound, e.g. min = \"{_example_min(spec)}\", or "
+                f'set); add a lower truncation bound, e.g. min = "{_example_min(spec)}", or '
                 "use a log-uniform distribution"
             )
         if lowest < 0 or (strict and lowest == 0):
@@ -486,8 +535,12 @@ def _distribution(kind: str, values: dict, where: str, part: str, spec: _Key) ->
 
 
 def _example_min(spec: _Key) -> str:
-    return {"length": "5 km", "viscosity": "1e17 Pa*s", "density": "2500 kg/m^3",
-            "acceleration": "9.7 m/s^2"}.get(spec.kind, "...")
+    return {
+        "length": "5 km",
+        "viscosity": "1e17 Pa*s",
+        "density": "2500 kg/m^3",
+        "acceleration": "9.7 m/s^2",
+    }.get(spec.kind, "...")
 
 
 def _parse_percentiles(values) -> tuple[float, ...]:
@@ -512,7 +565,12 @@ def _report_variable(name, where: str) -> str:
             f"{where}: {name} is a direction (it wraps around at north), so its percentiles are "
             "not defined; summarise flux_east and flux_north instead"
         )
-    valid = [v for v in VARIABLES if v not in CIRCULAR]
+    if name in WHOLE_GRID:
+        raise CrustflowInputError(
+            f"{where}: {name} needs the whole grid for every member and is not available in "
+            "ensembles; leave it out"
+        )
+    valid = [v for v in VARIABLES if v not in CIRCULAR + WHOLE_GRID]
     if not isinstance(name, str) or name not in VARIABLES:
         raise _unknown(name, valid, where)
     return name
@@ -541,8 +599,16 @@ def _parse_exceedance(table) -> tuple[str, tuple[float, ...]]:
 
 
 #: pint spellings of the UDUNITS units of VARIABLES.
-_PINT_UNITS = {"km": "km", "MPa": "MPa", "Pa m-1": "Pa/m", "m2 yr-1": "m**2/yr",
-               "mm yr-1": "mm/yr", "degree": "degree", "Pa s": "Pa*s", "1": "dimensionless"}
+_PINT_UNITS = {
+    "km": "km",
+    "MPa": "MPa",
+    "Pa m-1": "Pa/m",
+    "m2 yr-1": "m**2/yr",
+    "mm yr-1": "mm/yr",
+    "degree": "degree",
+    "Pa s": "Pa*s",
+    "1": "dimensionless",
+}
 
 
 def _parse_threshold(value, key: str, name: str) -> float:
@@ -683,13 +749,28 @@ class _Scalars:
         rho_c, rho_m, rho_w = get("rho_crust"), get("rho_mantle"), get("rho_water")
         zero = np.zeros(len(members))
         if airy:  # Airy: T = T0 + a H on land, T0 + b H under water (load.crust_thickness_airy)
-            t0, a, b = get("reference_thickness"), rho_m / (rho_m - rho_c), (
-                rho_m - rho_w) / (rho_m - rho_c)
+            t0, a, b = (
+                get("reference_thickness"),
+                rho_m / (rho_m - rho_c),
+                (rho_m - rho_w) / (rho_m - rho_c),
+            )
         else:
             t0, a, b = zero, zero, zero
-        return cls(get("channel_thickness"), get("viscosity"), get("wall_east"),
-                   get("wall_north"), rho_c, get("rho_channel"), rho_w, rho_m, get("gravity"),
-                   t0, a, b, airy)
+        return cls(
+            get("channel_thickness"),
+            get("viscosity"),
+            get("wall_east"),
+            get("wall_north"),
+            rho_c,
+            get("rho_channel"),
+            rho_w,
+            rho_m,
+            get("gravity"),
+            t0,
+            a,
+            b,
+            airy,
+        )
 
     @property
     def vectors(self) -> tuple[str, ...]:
@@ -714,39 +795,65 @@ def _terms(name: str, s: _Scalars) -> list[tuple[str, np.ndarray]]:
     if name in ("flux_east", "flux_north"):
         side = name.split("_")[1]
         return [("one", w_e if side == "east" else w_n)] + [
-            (f"{v}_{side}", k * gm) for v, gm in zip(vec, gam, strict=True)]
+            (f"{v}_{side}", k * gm) for v, gm in zip(vec, gam, strict=True)
+        ]
     if name in ("drive_east", "drive_north"):
         side = name.split("_")[1]
         return [(f"{v}_{side}", gm) for v, gm in zip(vec, gam, strict=True)]
     if name == "thickening_rate":
         return [("E", -w_e), ("N", -w_n)] + [
-            (f"D_{v}", -k * gm) for v, gm in zip(vec, gam, strict=True)]
+            (f"D_{v}", -k * gm) for v, gm in zip(vec, gam, strict=True)
+        ]
     if name == "uplift_rate":
         land = 1.0 - s.rho_ch / s.rho_m
         sea = (s.rho_m - s.rho_ch) / (s.rho_m - s.rho_w)
         thick = _terms("thickening_rate", s)
-        return [(f"{c}_land", v * land) for c, v in thick] + [(f"{c}_sea", v * sea)
-                                                              for c, v in thick]
+        return [(f"{c}_land", v * land) for c, v in thick] + [
+            (f"{c}_sea", v * sea) for c, v in thick
+        ]
     if name == "crust_thickness":
         return [("one", s.t0), ("Tg", tg), ("Hp", s.a), ("Hm", s.b)]
     if name == "channel_top_depth":
         return [("one", s.t0 - s.h), ("Tg", tg), ("Hp", s.a - 1.0), ("Hm", s.b - 1.0)]
     if name == "overburden_pressure":
         gc = s.g * s.rho_c
-        return [("one", gc * (s.t0 - s.h)), ("Tg", gc * tg), ("Hp", gc * s.a),
-                ("Hm", s.g * (s.rho_c * s.b - s.rho_w))]
+        return [
+            ("one", gc * (s.t0 - s.h)),
+            ("Tg", gc * tg),
+            ("Hp", gc * s.a),
+            ("Hm", s.g * (s.rho_c * s.b - s.rho_w)),
+        ]
     if name == "channel_thickness":
         return [("one", s.h)]
     raise KeyError(name)
 
 
 #: Variables that are sums of base maps times member scalars.
-LINEAR = ("flux_east", "flux_north", "drive_east", "drive_north", "thickening_rate", "uplift_rate",
-          "crust_thickness", "channel_top_depth", "overburden_pressure", "channel_thickness")
+LINEAR = (
+    "flux_east",
+    "flux_north",
+    "drive_east",
+    "drive_north",
+    "thickening_rate",
+    "uplift_rate",
+    "crust_thickness",
+    "channel_top_depth",
+    "overburden_pressure",
+    "channel_thickness",
+)
 #: Variables of the one-cell solution computed by crustflow.channel.channel_flow.
-SOLUTION = ("mean_velocity_east", "mean_velocity_north", "peak_speed", "peak_speed_height",
-            "upper_wall_drag_east", "upper_wall_drag_north", "lower_wall_drag_east",
-            "lower_wall_drag_north", "backflow", "wall_driven_share")
+SOLUTION = (
+    "mean_velocity_east",
+    "mean_velocity_north",
+    "peak_speed",
+    "peak_speed_height",
+    "upper_wall_drag_east",
+    "upper_wall_drag_north",
+    "lower_wall_drag_east",
+    "lower_wall_drag_north",
+    "backflow",
+    "wall_driven_share",
+)
 #: Everything the fast path computes; other variables need the fallback.
 FAST_VARIABLES = LINEAR + SOLUTION + ("flux_magnitude",)
 #: Variables defined wherever the inputs are (the rest also need a finite driving gradient).
@@ -845,15 +952,22 @@ class _Chunk:
     def _solution(self) -> dict:
         if "solution" not in self._cache:
             s = self.s
-            sol = channel_flow(self.values("drive_east"), self.values("drive_north"), s.h[None],
-                               s.eta[None], wall_east=s.ue[None], wall_north=s.un[None])
+            sol = channel_flow(
+                self.values("drive_east"),
+                self.values("drive_north"),
+                s.h[None],
+                s.eta[None],
+                wall_east=s.ue[None],
+                wall_north=s.un[None],
+            )
             out = {k: np.asarray(v, dtype=float) for k, v in sol.as_dict().items()}
             self._cache["solution"] = out
         return self._cache["solution"]
 
 
-def fast_fields(elevation, geometry, members, *, crust_thickness=None, moho_depth=None,
-                wanted=None) -> dict[str, np.ndarray]:
+def fast_fields(
+    elevation, geometry, members, *, crust_thickness=None, moho_depth=None, wanted=None
+) -> dict[str, np.ndarray]:
     """Output variables of many members at once on one block of cells, by the fast path.
 
     Parameters
@@ -900,15 +1014,35 @@ def fast_fields(elevation, geometry, members, *, crust_thickness=None, moho_dept
     members = list(members)
     H = np.asarray(elevation, dtype=float)
     airy = crust_thickness is None and moho_depth is None
-    T = None if airy else crust_thickness_of(H, members[0], crust_thickness=crust_thickness,
-                                             moho_depth=moho_depth)
-    names = list(wanted or ("flux_east", "flux_north", "flux_magnitude", "drive_east",
-                            "drive_north", "thickening_rate", "uplift_rate", "crust_thickness",
-                            "channel_top_depth", "overburden_pressure"))
+    T = (
+        None
+        if airy
+        else crust_thickness_of(
+            H, members[0], crust_thickness=crust_thickness, moho_depth=moho_depth
+        )
+    )
+    names = list(
+        wanted
+        or (
+            "flux_east",
+            "flux_north",
+            "flux_magnitude",
+            "drive_east",
+            "drive_north",
+            "thickening_rate",
+            "uplift_rate",
+            "crust_thickness",
+            "channel_top_depth",
+            "overburden_pressure",
+        )
+    )
     basis = _block_basis(H, T, geometry)
     cells = np.flatnonzero(basis["valid"])
-    chunk = _Chunk({k: v.ravel()[cells] for k, v in basis.items()}, _Scalars.of(members, airy),
-                   _Buffers(len(members)))
+    chunk = _Chunk(
+        {k: v.ravel()[cells] for k, v in basis.items()},
+        _Scalars.of(members, airy),
+        _Buffers(len(members)),
+    )
     out = {}
     for name in names:
         full = np.full((len(members), H.size), np.nan)
@@ -924,97 +1058,14 @@ def fast_path_obstacle(scenario, spec: EnsembleSpec) -> str | None:
         return f"the channel is {channel.rheology}, not Newtonian"
     if channel is not None and getattr(channel, "grids", None):
         return f"channel parameters are grids ({', '.join(channel.grids)})"
+    load_model = getattr(scenario, "load", None)
+    if load_model is not None and load_model != type(load_model)():
+        return "the load model is not a uniform crust with the channel at its base"
     needed = set(spec.variables) | {spec.exceedance_variable} - {None}
     other = sorted(needed - set(FAST_VARIABLES))
     if other:
         return f"the fast path does not compute {', '.join(other)}"
     return None
-
-
-# ----------------------------------------------------------------------------------------------
-# statistics
-
-
-def sorted_percentiles(rows: np.ndarray, percentiles) -> np.ndarray:
-    """Percentiles of each row of an array sorted along its rows, numpy's "linear" method.
-
-    Parameters
-    ----------
-    rows : ndarray, shape (cells, members)
-        Each row sorted ascending (NaN last).
-    percentiles : sequence of float
-        0 to 100.
-
-    Returns
-    -------
-    ndarray, shape (len(percentiles), cells)
-        float64; equal, bit for bit, to ``numpy.percentile(rows, percentiles, axis=1)`` on the
-        float64 values of ``rows``.
-
-    Notes
-    -----
-    Virtual index ``v = (n - 1) p / 100``, neighbours ``i = floor(v)`` and ``i + 1`` (the last value
-    when ``v >= n - 1``), weight ``t = v - i``, and numpy's interpolation ``a + (b - a) t`` (for
-    ``t < 0.5``) or ``b - (b - a)(1 - t)``: definition 7 of Hyndman & Fan (1996).
-
-    References
-    ----------
-    Hyndman, R. J. & Fan, Y. (1996), The American Statistician 50(4), 361-365.
-    """
-    n = rows.shape[1]
-    q = np.true_divide(np.asarray(percentiles, dtype=float), 100)
-    virtual = (n - 1) * q
-    lo = np.floor(virtual)
-    hi = lo + 1
-    top = virtual >= n - 1
-    lo[top], hi[top] = -1, -1
-    t = virtual - lo
-    a = rows[:, lo.astype(np.intp)].astype(np.float64).T
-    b = rows[:, hi.astype(np.intp)].astype(np.float64).T
-    diff = b - a
-    out = a + diff * t[:, None]
-    upper = np.broadcast_to((t >= 0.5)[:, None], out.shape)
-    np.subtract(b, diff * (1 - t)[:, None], out=out, where=upper)
-    return out
-
-
-class _Reducer:
-    """Per-cell statistics over members, gathered into the maps of one strip."""
-
-    def __init__(self, names, exceedance: str | None, thresholds, percentiles, members, buffers):
-        self.names, self.exceedance = list(names), exceedance
-        self.thresholds, self.percentiles = tuple(thresholds), tuple(percentiles)
-        self.members, self.buf = members, buffers
-
-    def start(self, cells: int) -> dict:
-        nan = np.nan
-        self.maps = {n: {"percentiles": np.full((len(self.percentiles), cells), nan),
-                         "mean": np.full(cells, nan), "sd": np.full(cells, nan)}
-                     for n in self.names}
-        if self.exceedance is not None:
-            self.maps.setdefault(self.exceedance, {})["exceedance"] = np.full(
-                (len(self.thresholds), cells), nan)
-        return self.maps
-
-    def add(self, name: str, vals: np.ndarray, idx: np.ndarray, rows: np.ndarray) -> None:
-        """Reduce ``vals`` (cells, members) of the cells ``idx`` of the strip; ``rows`` marks data."""
-        maps = self.maps[name]
-        if "exceedance" in maps:
-            for k, t in enumerate(self.thresholds):
-                share = np.count_nonzero(vals > t, axis=1) / self.members
-                maps["exceedance"][k, idx] = np.where(rows, share, np.nan)
-        if "mean" not in maps:
-            return
-        mean = vals.mean(axis=1)
-        dev = np.subtract(vals, mean[:, None], out=self.buf.get("deviation", vals.shape[0]))
-        sd = np.sqrt(np.einsum("ij,ij->i", dev, dev) / (self.members - 1))
-        maps["mean"][idx] = np.where(rows, mean, np.nan)
-        maps["sd"][idx] = np.where(rows, sd, np.nan)
-        ranked = self.buf.get("sorted", vals.shape[0], np.float32)
-        np.copyto(ranked, vals, casting="same_kind")
-        ranked.sort(axis=1)
-        maps["percentiles"][:, idx] = np.where(rows, sorted_percentiles(ranked, self.percentiles),
-                                               np.nan)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1028,8 +1079,12 @@ class _Strip:
         self.H = arrays["topography"]
 
     def thickness(self, parameters) -> np.ndarray:
-        return crust_thickness_of(self.H, parameters, crust_thickness=self.arrays.get(
-            "crust_thickness"), moho_depth=self.arrays.get("moho_depth"))
+        return crust_thickness_of(
+            self.H,
+            parameters,
+            crust_thickness=self.arrays.get("crust_thickness"),
+            moho_depth=self.arrays.get("moho_depth"),
+        )
 
 
 class _Grid:
@@ -1045,8 +1100,9 @@ class _Grid:
         self.crs, self.transform = topo.crs, topo.transform
         self.height, self.width = topo.height, topo.width
         self.airy = scenario.crust_thickness is None and scenario.moho_depth is None
-        channel = getattr(scenario, "channel", None)
-        self.cell_grids = dict(getattr(channel, "grids", None) or {})
+        self.cell_grids = {}
+        for setup in (getattr(scenario, "channel", None), getattr(scenario, "load", None)):
+            self.cell_grids.update(getattr(setup, "grids", None) or {})
 
     def strips(self, rows: int):
         from .stream import HALO_ROWS
@@ -1067,20 +1123,36 @@ class _Grid:
 
 
 def _member_fields(strip: _Strip, parameters, scenario, wanted) -> dict[str, np.ndarray]:
-    """fields_si of one member on one strip, cropped to the strip's own rows (the fallback)."""
+    """fields_si of one member on one strip, cropped to the strip's own rows (the fallback).
+
+    The strip is checked as :mod:`crustflow.stream` checks it: a channel not thinner than the
+    crust, and roof layers reaching below the channel top, are errors.
+    """
     T = strip.thickness(parameters)
     h = strip.cell.get("channel_thickness", parameters.channel_thickness)
-    with np.errstate(invalid="ignore"):
-        bad = np.isfinite(T) & np.isfinite(strip.H) & (T <= h)
-    if bad[strip.crop].any():
-        raise CrustflowInputError(
-            f"the channel is not thinner than the crust in {int(bad[strip.crop].sum())} cells for "
-            "an ensemble member; narrow channel.thickness (or the densities) in [ensemble.vary]"
-        )
-    kw = {}
-    if strip.cell or getattr(scenario, "channel", None) is not None:
-        kw = {"setup": scenario.channel, "cell": strip.cell}
+    if h is not None:  # None: the channel is placed by depths
+        with np.errstate(invalid="ignore"):
+            bad = (np.isfinite(T) & np.isfinite(strip.H) & (T <= h))[strip.crop]
+        if bad.any():
+            raise CrustflowInputError(
+                f"the channel is not thinner than the crust in {int(bad.sum())} cells for an "
+                "ensemble member; narrow channel.thickness (or the densities) in [ensemble.vary]"
+            )
+    kw: dict = {"cell": strip.cell}
+    for key, attr in (("setup", "channel"), ("load_setup", "load")):
+        if getattr(scenario, attr, None) is not None:
+            kw[key] = getattr(scenario, attr)
+    diagnostics: dict = {}
+    if "load_setup" in kw:
+        kw["diagnostics"] = diagnostics
     si = fields_si(strip.H, T, strip.geom, parameters, wanted=set(wanted), **kw)
+    roof_bad = diagnostics.get("roof_bad")
+    if roof_bad is not None and roof_bad[strip.crop].any():
+        from .load_setup import ColumnCheck
+
+        check = ColumnCheck()
+        check.update(roof_bad[strip.crop], 0)
+        check.finish()
     return {n: si[n][strip.crop] for n in wanted}
 
 
@@ -1089,11 +1161,18 @@ def _scan(grid: _Grid, rows: int, bar) -> dict:
     from .grids import GridChecks
 
     checks = GridChecks(grid.sources)
+    cells = None
+    if grid.cell_grids:
+        from .channel_setup import CellInputCheck
+
+        cells = CellInputCheck()
     low = {"H": np.inf, "T": np.inf}
     p = grid.scenario.parameters
     for strip in grid.strips(rows):
         crop = {k: v[strip.crop] for k, v in strip.arrays.items()}
         checks.update(crop)
+        if cells is not None:
+            cells.update({k: v[strip.crop] for k, v in strip.cell.items()})
         H = crop["topography"]
         ok = np.isfinite(H)
         if ok.any():
@@ -1105,6 +1184,8 @@ def _scan(grid: _Grid, rows: int, bar) -> dict:
                 low["T"] = min(low["T"], float(T[ok].min()))
         bar.update(strip.r1 - strip.r0)
     checks.finish()
+    if cells is not None:
+        cells.finish()
     return low
 
 
@@ -1118,8 +1199,12 @@ def _check_thickness(members, low: dict, airy: bool, varied: bool) -> None:
     bad = np.flatnonzero(s.h >= thinnest)
     if bad.size:
         i = int(bad[0])
-        fix = ("set max in [ensemble.vary].\"channel.thickness\" below the thinnest crust"
-               if varied else "give a thinner channel or narrow the varied densities")
+        fix = (
+            'set max in [ensemble.vary]."channel.thickness" below the thinnest crust'
+            if varied
+            else "give a thinner channel or narrow the varied densities and reference thickness in "
+            "[ensemble.vary]"
+        )
         raise CrustflowInputError(
             f"channel.thickness is not less than the thinnest crust in {bad.size} of "
             f"{len(members)} ensemble members (member {i}: channel {s.h[i] / 1e3:.4g} km, crust "
@@ -1131,9 +1216,16 @@ def _check_thickness(members, low: dict, airy: bool, varied: bool) -> None:
 # the run
 
 
-def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False,
-                 strip_rows: int | None = None, fast: bool | None = None,
-                 memory_bytes: int = MEMORY_BYTES) -> dict:
+def run_ensemble(
+    scenario,
+    spec: EnsembleSpec,
+    folder,
+    *,
+    progress: bool = False,
+    strip_rows: int | None = None,
+    fast: bool | None = None,
+    memory_bytes: int = MEMORY_BYTES,
+) -> dict:
     """Run an ensemble of a scenario and write its maps, tables and figures into ``folder``.
 
     Parameters
@@ -1163,7 +1255,9 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
         ``samples`` (DataFrame of :func:`sample_members`), ``member_budgets`` (DataFrame of the
         volume flux of each feature per member, m^3/yr, or None), ``budget_statistics``
         (DataFrame or None), ``timings`` (seconds per stage), ``shape``, ``strip_rows``,
-        ``chunk_cells``, ``provenance`` (grid alignment), ``spec`` (:meth:`EnsembleSpec.describe`).
+        ``chunk_cells``, ``provenance`` (grid alignment), ``spec`` (:meth:`EnsembleSpec.describe`),
+        ``members``, ``percentile_method``, and ``manifest``: the JSON-ready entries (no
+        DataFrames; budget statistics as records) for a run manifest.
 
     Raises
     ------
@@ -1176,7 +1270,8 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
     Fast path: a first pass checks the grids; then each strip of rows is read with two halo rows,
     its base maps are computed (:func:`fast_fields`), its valid cells are cut into chunks of
     ``memory_bytes / (8 members FAST_ARRAYS)`` cells, and each chunk's member values are formed by
-    one matrix product per variable and reduced at once (:class:`_Reducer`). Budgets are linear in
+    one matrix product per variable and reduced at once
+    (:class:`crustflow.ensemble_report.Reducer`). Budgets are linear in
     the flux: the budgets of the two or three base flux fields and of the unit wall fields
     (:func:`crustflow.budgets.budget_table`) combine with the member scalars.
     Fallback: strips of ``memory_bytes / (8 members (variables + 2) width)`` rows; each member runs
@@ -1197,9 +1292,23 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
         clock[0] = now
 
     def bar(total, unit, desc):
-        return tqdm(total=total, unit=unit, desc=desc, leave=False, file=sys.stderr,
-                    disable=not progress, dynamic_ncols=True, unit_scale=True)
+        return tqdm(
+            total=total,
+            unit=unit,
+            desc=desc,
+            leave=False,
+            file=sys.stderr,
+            disable=not progress,
+            dynamic_ncols=True,
+            unit_scale=True,
+        )
 
+    load_model = getattr(scenario, "load", None)
+    if getattr(load_model, "filtered", False):
+        raise CrustflowInputError(
+            "ensembles do not support [load] smoothing or elastic_thickness yet (the filtered load "
+            "is a whole-grid computation for every member); remove them from the scenario"
+        )
     members, samples = sample_members(spec, scenario.parameters)
     obstacle = fast_path_obstacle(scenario, spec)
     if fast is None:
@@ -1213,8 +1322,11 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
 
         M = spec.members
         names = list(spec.variables)
-        needed = list(dict.fromkeys(names + [spec.exceedance_variable])) if \
-            spec.exceedance_variable else names
+        needed = (
+            list(dict.fromkeys(names + [spec.exceedance_variable]))
+            if spec.exceedance_variable
+            else names
+        )
         full = bool(set(needed) & set(SOLUTION))
         rows = strip_rows or strip_rows_for(grid.width)
         with bar(grid.height, " rows", "checking grids") as b:
@@ -1225,8 +1337,9 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
         lap("check grids")
         percentiles = tuple(sorted(set(spec.percentiles) | set(FIGURE_PERCENTILES)))
         buffers = _Buffers(M)
-        reducer = _Reducer(names, spec.exceedance_variable, spec.thresholds, percentiles, M,
-                           buffers)
+        reducer = report.Reducer(
+            names, spec.exceedance_variable, spec.thresholds, percentiles, M, buffers.get
+        )
         if fast:
             chunk = max(1, memory_bytes // (8 * M * (FULL_ARRAYS if full else FAST_ARRAYS)))
         else:
@@ -1238,8 +1351,11 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
                 with bar(grid.height * grid.width, " cells", f"ensemble ({M} members)") as b:
                     _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, b)
             else:
-                with bar(M * -(-grid.height // rows), " member-strips",
-                         f"ensemble ({M} members, fallback)") as b:
+                with bar(
+                    M * -(-grid.height // rows),
+                    " member-strips",
+                    f"ensemble ({M} members, fallback)",
+                ) as b:
                     _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, b)
             written = writer.close()
         except BaseException:
@@ -1249,8 +1365,9 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
         member_budgets = None
         if features:
             with bar(None, " fields", "budgets") as b:
-                member_budgets = _member_budgets(grid, members, features, fast, rows,
-                                                 memory_bytes, b)
+                member_budgets = _member_budgets(
+                    grid, members, features, fast, rows, memory_bytes, b
+                )
             lap("budgets")
         provenance = grid_provenance(grid.sources)
     finally:
@@ -1260,12 +1377,27 @@ def run_ensemble(scenario, spec: EnsembleSpec, folder, *, progress: bool = False
     if "figure" in scenario.formats:
         written += writer.figures(folder, stats, member_budgets)
     lap("tables and figures")
-    return {"written": written, "fast_path": bool(fast), "fast_path_obstacle": obstacle,
-            "samples": samples, "member_budgets": member_budgets,
-            "budget_statistics": stats if member_budgets is not None else None,
-            "timings": timings, "shape": [grid.height, grid.width], "strip_rows": rows,
-            "chunk_cells": chunk, "provenance": provenance, "spec": spec.describe(),
-            "members": M, "percentile_method": report.PERCENTILE_METHOD}
+    summary = {
+        "fast_path": bool(fast),
+        "fast_path_obstacle": obstacle,
+        "members": M,
+        "spec": spec.describe(),
+        "percentile_method": report.PERCENTILE_METHOD,
+        "timings": {k: round(v, 4) for k, v in timings.items()},
+        "shape": [grid.height, grid.width],
+        "strip_rows": rows,
+        "chunk_cells": chunk,
+        "provenance": provenance,
+    }
+    budget_records = None if member_budgets is None else stats.to_dict(orient="records")
+    return dict(
+        summary,
+        written=written,
+        samples=samples,
+        member_budgets=member_budgets,
+        budget_statistics=stats if member_budgets is not None else None,
+        manifest=dict(summary, outputs=list(written), budget_statistics=budget_records),
+    )
 
 
 def _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, bar) -> None:
@@ -1277,7 +1409,7 @@ def _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, bar
         cells = np.flatnonzero(flat["valid"])
         reducer.start(flat["valid"].size)
         for c0 in range(0, cells.size, chunk):
-            idx = cells[c0:c0 + chunk]
+            idx = cells[c0 : c0 + chunk]
             part = _Chunk({k: v[idx] for k, v in flat.items()}, scalars, buffers)
             for name in needed:
                 rows_ok = part.columns["valid" if name in _ON_VALID else "live"]
@@ -1300,7 +1432,7 @@ def _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> 
         reducer.start(n)
         cells = np.flatnonzero(np.isfinite(strip.H[strip.crop]).ravel())
         for c0 in range(0, cells.size, chunk):
-            idx = cells[c0:c0 + chunk]
+            idx = cells[c0 : c0 + chunk]
             for name in needed:
                 vals = np.ascontiguousarray(stacks[name][:, idx].T)
                 reducer.add(name, vals, idx, np.isfinite(vals).all(axis=1))
@@ -1344,11 +1476,14 @@ def _member_budgets(grid, members, features, fast: bool, rows: int, memory: int,
             qn = np.where(live, base[north] if north else 0.0, np.nan)
             thick = -divergence(qe, qn, strip.geom)
             return [v[strip.crop] for v in (qe, qn, thick)]
+
         n_jobs = len(jobs)
     else:
+
         def fields(strip, j, cache):
             si = _member_fields(strip, members[j], grid.scenario, wanted)
             return [si[n] for n in wanted]
+
         n_jobs = len(members)
     tables = _whole_grid_budgets(grid, n_jobs, fields, features, rows, memory, bar)
     labels = report.budget_labels(tables[0])
@@ -1378,11 +1513,12 @@ def _whole_grid_budgets(grid, n_jobs, fields, features, rows, memory, bar):
             cache: dict = {}
             for i, j in enumerate(jobs):
                 for k, values in enumerate(fields(strip, j, cache)):
-                    store[i, k, strip.r0:strip.r1] = values
+                    store[i, k, strip.r0 : strip.r1] = values
         for i in range(len(jobs)):
-            ds = xr.Dataset({n: (("y", "x"), to_practical(n, store[i, k]))
-                             for k, n in enumerate(names)},
-                            coords={"y": grid.y, "x": grid.x}).rio.write_crs(grid.crs)
+            ds = xr.Dataset(
+                {n: (("y", "x"), to_practical(n, store[i, k])) for k, n in enumerate(names)},
+                coords={"y": grid.y, "x": grid.x},
+            ).rio.write_crs(grid.crs)
             tables.append(budget_table(ds, features.get("sections"), features.get("regions")))
             bar.update(1)
     return tables

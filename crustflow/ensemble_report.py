@@ -1,4 +1,5 @@
-"""The files of an ensemble run: percentile maps (NetCDF, GeoTIFF), tables (CSV) and figures.
+"""Reducing an ensemble to what is reported, and the files: statistics over members per cell,
+percentile maps (NetCDF, GeoTIFF), tables (CSV) and figures.
 
 Written into the run's (temporary) folder by :func:`crustflow.ensemble.run_ensemble`:
 
@@ -30,8 +31,18 @@ import numpy as np
 
 from .fields import CAUTION, VARIABLES, to_practical
 
-__all__ = ["MapWriter", "write_tables", "budget_statistics", "budget_labels", "percentile_label",
-           "ensemble_map", "budget_histograms", "PERCENTILE_METHOD"]
+__all__ = [
+    "MapWriter",
+    "Reducer",
+    "sorted_percentiles",
+    "write_tables",
+    "budget_statistics",
+    "budget_labels",
+    "percentile_label",
+    "ensemble_map",
+    "budget_histograms",
+    "PERCENTILE_METHOD",
+]
 
 #: How the percentile maps are computed (also a NetCDF attribute).
 PERCENTILE_METHOD = (
@@ -94,24 +105,40 @@ class MapWriter:
         self.tifs: dict[tuple[str, float], object] = {}
         M = spec.members
         if "netcdf" in scenario.formats:
-            attrs = netcdf_attrs(scenario.title, json.dumps(scenario.written),
-                                 dict(vars(scenario.parameters)))
-            attrs.update(history=attrs["history"].replace("crustflow run", "crustflow ensemble"),
-                         ensemble_members=M, ensemble_seed=spec.seed,
-                         ensemble_sampling=spec.sampling,
-                         ensemble_vary=json.dumps(spec.describe()["vary"]),
-                         ensemble_percentile_method=PERCENTILE_METHOD,
-                         ensemble_sd="sample standard deviation over the members (ddof = 1)",
-                         ensemble_exceedance="share of members strictly above each threshold")
+            attrs = netcdf_attrs(
+                scenario.title, json.dumps(scenario.written), dict(vars(scenario.parameters))
+            )
+            attrs.update(
+                history=attrs["history"].replace("crustflow run", "crustflow ensemble"),
+                ensemble_members=M,
+                ensemble_seed=spec.seed,
+                ensemble_sampling=spec.sampling,
+                ensemble_vary=json.dumps(spec.describe()["vary"]),
+                ensemble_percentile_method=PERCENTILE_METHOD,
+                ensemble_sd="sample standard deviation over the members (ddof = 1)",
+                ensemble_exceedance="share of members strictly above each threshold",
+            )
             two_d = {}
             for n in self.names:
                 var = VARIABLES[n]
-                two_d[f"{n}_mean"] = {"long_name": f"{var.long_name}: mean over {M} ensemble "
-                                      "members", "units": var.units}
-                two_d[f"{n}_sd"] = {"long_name": f"{var.long_name}: standard deviation over {M} "
-                                    "ensemble members", "units": var.units}
-            self.nc = NetcdfWriter(self.folder / "ensemble.nc", grid.x, grid.y, grid.crs,
-                                   grid.transform, two_d, attrs, chunk_rows=chunk_rows)
+                two_d[f"{n}_mean"] = {
+                    "long_name": f"{var.long_name}: mean over {M} ensemble members",
+                    "units": var.units,
+                }
+                two_d[f"{n}_sd"] = {
+                    "long_name": f"{var.long_name}: standard deviation over {M} ensemble members",
+                    "units": var.units,
+                }
+            self.nc = NetcdfWriter(
+                self.folder / "ensemble.nc",
+                grid.x,
+                grid.y,
+                grid.crs,
+                grid.transform,
+                two_d,
+                attrs,
+                chunk_rows=chunk_rows,
+            )
             self._add_stacked(chunk_rows)
             self.written.append("ensemble.nc")
         if "geotiff" in scenario.formats:
@@ -120,10 +147,18 @@ class MapWriter:
                 for p in spec.percentiles:
                     name = f"{n}_{percentile_label(p)}.tif"
                     self.tifs[n, p] = GeotiffWriter(
-                        self.folder / name, crs=grid.crs, transform=grid.transform,
-                        height=grid.height, width=grid.width,
-                        attrs={"long_name": f"{var.long_name}: percentile {p:g} of {M} ensemble "
-                               "members", "units": var.units, "caution": CAUTION})
+                        self.folder / name,
+                        crs=grid.crs,
+                        transform=grid.transform,
+                        height=grid.height,
+                        width=grid.width,
+                        attrs={
+                            "long_name": f"{var.long_name}: percentile {p:g} of {M} ensemble "
+                            "members",
+                            "units": var.units,
+                            "caution": CAUTION,
+                        },
+                    )
                     self.written.append(name)
         self.step = max(1, -(-max(grid.height, grid.width) // FIGURE_CELLS))
         self.figure_rows: dict[str, list] = {"median": [], "spread": []}
@@ -133,30 +168,63 @@ class MapWriter:
         ds, spec, g = self.nc.nc, self.spec, self.grid
         chunks = (1, min(max(chunk_rows, 16), 256, g.height), min(256, g.width))
         cache = 2 * (g.width // chunks[2] + 1) * chunks[1] * chunks[2] * 4
-        coords = [("percentile", list(spec.percentiles),
-                   {"long_name": "percentile over the ensemble members", "units": "percent"})]
-        stacked = [(n, "percentile", {"long_name": f"{VARIABLES[n].long_name}: percentiles over "
-                                      f"{spec.members} ensemble members",
-                                      "units": VARIABLES[n].units,
-                                      "percentile_method": PERCENTILE_METHOD})
-                   for n in self.names]
+        coords = [
+            (
+                "percentile",
+                list(spec.percentiles),
+                {"long_name": "percentile over the ensemble members", "units": "percent"},
+            )
+        ]
+        stacked = [
+            (
+                n,
+                "percentile",
+                {
+                    "long_name": f"{VARIABLES[n].long_name}: percentiles over "
+                    f"{spec.members} ensemble members",
+                    "units": VARIABLES[n].units,
+                    "percentile_method": PERCENTILE_METHOD,
+                },
+            )
+            for n in self.names
+        ]
         exc = spec.exceedance_variable
         if exc is not None:
             var = VARIABLES[exc]
-            coords.append(("threshold", [t * var.factor for t in spec.thresholds],
-                           {"long_name": f"threshold of {exc}", "units": var.units}))
-            stacked.append((f"{exc}_exceedance", "threshold", {
-                "long_name": f"probability that {exc} exceeds the threshold (share of "
-                f"{spec.members} ensemble members above it)", "units": "1",
-                "valid_range": np.array([0.0, 1.0], dtype="float32")}))
+            coords.append(
+                (
+                    "threshold",
+                    [t * var.factor for t in spec.thresholds],
+                    {"long_name": f"threshold of {exc}", "units": var.units},
+                )
+            )
+            stacked.append(
+                (
+                    f"{exc}_exceedance",
+                    "threshold",
+                    {
+                        "long_name": f"probability that {exc} exceeds the threshold (share of "
+                        f"{spec.members} ensemble members above it)",
+                        "units": "1",
+                        "valid_range": np.array([0.0, 1.0], dtype="float32"),
+                    },
+                )
+            )
         for name, values, attrs in coords:
             ds.createDimension(name, len(values))
             var = ds.createVariable(name, "f8", (name,))
             var[:] = np.asarray(values, dtype=float)
             var.setncatts(attrs)
         for name, dim, attrs in stacked:
-            var = ds.createVariable(name, "f4", (dim, "y", "x"), zlib=True, complevel=4,
-                                    chunksizes=chunks, fill_value=np.float32(np.nan))
+            var = ds.createVariable(
+                name,
+                "f4",
+                (dim, "y", "x"),
+                zlib=True,
+                complevel=4,
+                chunksizes=chunks,
+                fill_value=np.float32(np.nan),
+            )
             var.set_auto_maskandscale(False)
             var.set_var_chunk_cache(size=cache * len(ds.dimensions[dim]), preemption=0.9)
             var.setncatts(attrs)
@@ -170,16 +238,21 @@ class MapWriter:
             pct = to_practical(n, m["percentiles"]).reshape(-1, *shape)
             if self.nc is not None:
                 self.nc.nc.variables[n][:, r0:r1, :] = pct[self.pick].astype("float32")
-                self.nc.write_rows(r0, {f"{n}_mean": to_practical(n, m["mean"]).reshape(shape),
-                                        f"{n}_sd": to_practical(n, m["sd"]).reshape(shape)})
+                self.nc.write_rows(
+                    r0,
+                    {
+                        f"{n}_mean": to_practical(n, m["mean"]).reshape(shape),
+                        f"{n}_sd": to_practical(n, m["sd"]).reshape(shape),
+                    },
+                )
             for k, p in zip(self.pick, self.spec.percentiles, strict=True):
                 if (n, p) in self.tifs:
                     self.tifs[n, p].write_rows(r0, pct[k])
             if i == 0:
                 lo, mid, hi = (pct[k] for k in self.figure_pick)
                 first, s = (-r0) % self.step, self.step
-                self.figure_rows["median"].append(mid[first::s, s // 2::s])
-                self.figure_rows["spread"].append((hi - lo)[first::s, s // 2::s])
+                self.figure_rows["median"].append(mid[first::s, s // 2 :: s])
+                self.figure_rows["spread"].append((hi - lo)[first::s, s // 2 :: s])
         exc = self.spec.exceedance_variable
         if exc is not None and self.nc is not None:
             values = maps[exc]["exceedance"].reshape(-1, *shape)
@@ -208,16 +281,138 @@ class MapWriter:
         n = self.names[0]
         median = np.concatenate(self.figure_rows["median"], axis=0)
         spread = np.concatenate(self.figure_rows["spread"], axis=0)
-        xs, ys = g.x[s // 2::s], g.y[::s][: median.shape[0]]
+        xs, ys = g.x[s // 2 :: s], g.y[::s][: median.shape[0]]
         title = f"{self.spec.members}-member ensemble: {n}"
-        ensemble_map(median, spread, xs, ys, g.crs, n, Path(folder) / "ensemble_map.png",
-                     title=title)
+        ensemble_map(
+            median, spread, xs, ys, g.crs, n, Path(folder) / "ensemble_map.png", title=title
+        )
         out = ["ensemble_map.png"]
         if member_budgets is not None and member_budgets.shape[1]:
-            budget_histograms(member_budgets, stats, Path(folder) / "ensemble_budgets.png",
-                              percentiles=self.spec.percentiles)
+            budget_histograms(
+                member_budgets,
+                stats,
+                Path(folder) / "ensemble_budgets.png",
+                percentiles=self.spec.percentiles,
+            )
             out.append("ensemble_budgets.png")
         return out
+
+
+# ----------------------------------------------------------------------------------------------
+# statistics
+
+
+def sorted_percentiles(rows: np.ndarray, percentiles) -> np.ndarray:
+    """Percentiles of each row of an array sorted along its rows, numpy's "linear" method.
+
+    Parameters
+    ----------
+    rows : ndarray, shape (cells, members)
+        Each row sorted ascending (NaN last).
+    percentiles : sequence of float
+        0 to 100.
+
+    Returns
+    -------
+    ndarray, shape (len(percentiles), cells)
+        float64; equal, bit for bit, to ``numpy.percentile(rows, percentiles, axis=1)`` on the
+        float64 values of ``rows``.
+
+    Notes
+    -----
+    Virtual index ``v = (n - 1) p / 100``, neighbours ``i = floor(v)`` and ``i + 1`` (the last value
+    when ``v >= n - 1``), weight ``t = v - i``, and numpy's interpolation ``a + (b - a) t`` (for
+    ``t < 0.5``) or ``b - (b - a)(1 - t)``: definition 7 of Hyndman & Fan (1996).
+
+    References
+    ----------
+    Hyndman, R. J. & Fan, Y. (1996), The American Statistician 50(4), 361-365.
+    """
+    n = rows.shape[1]
+    q = np.true_divide(np.asarray(percentiles, dtype=float), 100)
+    virtual = (n - 1) * q
+    lo = np.floor(virtual)
+    hi = lo + 1
+    top = virtual >= n - 1
+    lo[top], hi[top] = -1, -1
+    t = virtual - lo
+    a = rows[:, lo.astype(np.intp)].astype(np.float64).T
+    b = rows[:, hi.astype(np.intp)].astype(np.float64).T
+    diff = b - a
+    out = a + diff * t[:, None]
+    upper = np.broadcast_to((t >= 0.5)[:, None], out.shape)
+    np.subtract(b, diff * (1 - t)[:, None], out=out, where=upper)
+    return out
+
+
+class Reducer:
+    """Per-cell statistics over members, gathered into the flat maps of one strip (SI).
+
+    Parameters
+    ----------
+    names : sequence of str
+        Variables whose percentiles, mean and sd are mapped.
+    exceedance : str or None
+        Variable whose exceedance probabilities are mapped.
+    thresholds : sequence of float
+        Its thresholds, SI.
+    percentiles : sequence of float
+        0 to 100, ascending.
+    members : int
+    buffer : callable
+        ``buffer(name, cells, dtype)`` returns a reusable (cells, members) work array.
+
+    Notes
+    -----
+    Mean; sample standard deviation ``sqrt(sum((x - mean)^2) / (n - 1))``; exceedance
+    ``count(x > t) / n``; percentiles by :func:`sorted_percentiles` on the values rounded to float32
+    and sorted (rounding is monotone, so the order statistics are the float64 ones, rounded).
+    """
+
+    def __init__(self, names, exceedance: str | None, thresholds, percentiles, members, buffer):
+        self.names, self.exceedance = list(names), exceedance
+        self.thresholds, self.percentiles = tuple(thresholds), tuple(percentiles)
+        self.members, self.buffer = members, buffer
+
+    def start(self, cells: int) -> dict:
+        """Begin a strip of ``cells`` cells: fresh maps, NaN until filled."""
+        nan = np.nan
+        self.maps = {
+            n: {
+                "percentiles": np.full((len(self.percentiles), cells), nan),
+                "mean": np.full(cells, nan),
+                "sd": np.full(cells, nan),
+            }
+            for n in self.names
+        }
+        if self.exceedance is not None:
+            self.maps.setdefault(self.exceedance, {})["exceedance"] = np.full(
+                (len(self.thresholds), cells), nan
+            )
+        return self.maps
+
+    def add(self, name: str, vals: np.ndarray, idx: np.ndarray, rows: np.ndarray) -> None:
+        """Reduce ``vals`` (cells, members) of the cells ``idx`` of the strip; ``rows`` marks data."""
+        maps = self.maps[name]
+        if "exceedance" in maps:
+            for k, t in enumerate(self.thresholds):
+                share = np.count_nonzero(vals > t, axis=1) / self.members
+                maps["exceedance"][k, idx] = np.where(rows, share, np.nan)
+        if "mean" not in maps:
+            return
+        mean = vals.mean(axis=1)
+        dev = np.subtract(
+            vals, mean[:, None], out=self.buffer("deviation", vals.shape[0], np.float64)
+        )
+        sd = np.sqrt(np.einsum("ij,ij->i", dev, dev) / (self.members - 1))
+        maps["mean"][idx] = np.where(rows, mean, np.nan)
+        maps["sd"][idx] = np.where(rows, sd, np.nan)
+        ranked = self.buffer("sorted", vals.shape[0], np.float32)
+        np.copyto(ranked, vals, casting="same_kind")
+        ranked.sort(axis=1)
+        maps["percentiles"][:, idx] = np.where(
+            rows, sorted_percentiles(ranked, self.percentiles), np.nan
+        )
 
 
 # ----------------------------------------------------------------------------------------------
@@ -229,8 +424,10 @@ def budget_labels(table) -> list[str]:
     from .budgets import safe_name
 
     taken: set[str] = set()
-    return [f"{kind}_{safe_name(str(name), taken)}_volume_flux_m3_per_yr"
-            for name, kind in zip(table["name"], table["kind"], strict=True)]
+    return [
+        f"{kind}_{safe_name(str(name), taken)}_volume_flux_m3_per_yr"
+        for name, kind in zip(table["name"], table["kind"], strict=True)
+    ]
 
 
 def budget_statistics(member_budgets, percentiles, members: int):
@@ -256,8 +453,9 @@ def budget_statistics(member_budgets, percentiles, members: int):
         return None
     values = member_budgets.to_numpy(dtype=float)
     rows = []
-    for j, (name, kind) in enumerate(zip(member_budgets.attrs["names"],
-                                         member_budgets.attrs["kinds"], strict=True)):
+    for j, (name, kind) in enumerate(
+        zip(member_budgets.attrs["names"], member_budgets.attrs["kinds"], strict=True)
+    ):
         v = values[:, j]
         stats = {"mean": float(np.mean(v)), "sd": float(np.std(v, ddof=1))}
         pct = np.percentile(v, list(percentiles), method="linear")
@@ -303,8 +501,9 @@ def _foot(fig, text: str) -> None:
     fig.text(0.01, 0.005, f"{text} {CAUTION}", fontsize=6, ha="left", va="bottom", wrap=True)
 
 
-def ensemble_map(median, spread, x, y, crs, name: str, path, *, title: str = "",
-                 dpi: int = 150) -> Path:
+def ensemble_map(
+    median, spread, x, y, crs, name: str, path, *, title: str = "", dpi: int = 150
+) -> Path:
     """Median and 5-95 % spread (p95 - p5) of one variable, side by side (cividis, units).
 
     Parameters
@@ -335,10 +534,17 @@ def ensemble_map(median, spread, x, y, crs, name: str, path, *, title: str = "",
     extent = (xs.min() - dx / 2, xs.max() + dx / 2, ys.min() - dy / 2, ys.max() + dy / 2)
     units = _pretty(VARIABLES[name].units)
     fig, axes = plt.subplots(1, 2, figsize=(12, 5.5), layout="constrained")
-    for ax, values, label in ((axes[0], median, "median (p50)"),
-                              (axes[1], spread, "spread p95 - p5")):
-        image = ax.imshow(values, extent=extent, origin="upper" if ys[0] > ys[-1] else "lower",
-                          cmap="cividis", interpolation="nearest")
+    for ax, values, label in (
+        (axes[0], median, "median (p50)"),
+        (axes[1], spread, "spread p95 - p5"),
+    ):
+        image = ax.imshow(
+            values,
+            extent=extent,
+            origin="upper" if ys[0] > ys[-1] else "lower",
+            cmap="cividis",
+            interpolation="nearest",
+        )
         fig.colorbar(image, ax=ax, shrink=0.85).set_label(f"{name}, {label} ({units})")
         ax.set_title(label)
         ax.set_xlabel("longitude (degrees)" if geographic else "x (km)")
@@ -355,8 +561,9 @@ def ensemble_map(median, spread, x, y, crs, name: str, path, *, title: str = "",
     return path
 
 
-def budget_histograms(member_budgets, stats, path, *, percentiles=(5, 50, 95),
-                      dpi: int = 150) -> Path:
+def budget_histograms(
+    member_budgets, stats, path, *, percentiles=(5, 50, 95), dpi: int = 150
+) -> Path:
     """One histogram of the members' volume flux per budget feature, km^3/Myr.
 
     Parameters
@@ -380,8 +587,9 @@ def budget_histograms(member_budgets, stats, path, *, percentiles=(5, 50, 95),
     n = member_budgets.shape[1]
     cols = min(3, n)
     rows = -(-n // cols)
-    fig, axes = plt.subplots(rows, cols, figsize=(4.2 * cols, 3.2 * rows + 0.6),
-                             layout="constrained", squeeze=False)
+    fig, axes = plt.subplots(
+        rows, cols, figsize=(4.2 * cols, 3.2 * rows + 0.6), layout="constrained", squeeze=False
+    )
     values = member_budgets.to_numpy(dtype=float) / M3_PER_YR_PER_KM3_PER_MYR
     for j, ax in enumerate(axes.ravel()):
         if j >= n:
@@ -394,10 +602,16 @@ def budget_histograms(member_budgets, stats, path, *, percentiles=(5, 50, 95),
             row = stats.iloc[j]
             ax.axvline(row["mean_km3_per_Myr"], color="black", lw=1.2, label="mean")
             for p in percentiles:
-                ax.axvline(row[f"{percentile_label(p)}_km3_per_Myr"], color="#d9a21b", lw=1,
-                           ls="--")
-            ax.plot([], [], color="#d9a21b", ls="--",
-                    label="percentiles " + ", ".join(f"{p:g}" for p in percentiles))
+                ax.axvline(
+                    row[f"{percentile_label(p)}_km3_per_Myr"], color="#d9a21b", lw=1, ls="--"
+                )
+            ax.plot(
+                [],
+                [],
+                color="#d9a21b",
+                ls="--",
+                label="percentiles " + ", ".join(f"{p:g}" for p in percentiles),
+            )
             ax.legend(fontsize=6, loc="upper right")
         else:
             ax.text(0.5, 0.5, "no data", ha="center", va="center", transform=ax.transAxes)

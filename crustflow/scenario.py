@@ -58,6 +58,7 @@ _SCHEMA: dict[str, Any] = {
     "output": {"variables": "list", "formats": "list"},
     "budgets": {"sections": "path", "regions": "path"},
     "roof": {"layers": "list"},  # checked by crustflow.load_setup
+    "ensemble": "table",  # checked by crustflow.ensemble.parse_ensemble
     "load": {
         "smoothing": "length",
         "elastic_thickness": "length",
@@ -165,6 +166,7 @@ class Scenario:
     regions: Path | None = None
     channel: ChannelSetup = field(default_factory=ChannelSetup)
     load: LoadSetup = field(default_factory=LoadSetup)
+    ensemble: object | None = None  #: crustflow.ensemble.EnsembleSpec when [ensemble] is given
 
     def resolved(self) -> dict:
         """The scenario resolved to SI units, as a JSON-ready dict."""
@@ -335,7 +337,16 @@ def scenario_from_dict(
     budgets = raw.get("budgets", {})
     sections = _path(budgets["sections"], "budgets.sections", base) if "sections" in budgets else None
     regions = _path(budgets["regions"], "budgets.regions", base) if "regions" in budgets else None
+    ensemble = None
+    if "ensemble" in raw:
+        if not isinstance(raw["ensemble"], dict):
+            raise CrustflowInputError("[ensemble] must be a table with members, seed and "
+                                      "[ensemble.vary]")
+        from .ensemble import parse_ensemble
+
+        ensemble = parse_ensemble(raw["ensemble"], params)
     return Scenario(
+        ensemble=ensemble,
         load=load_setup,
         channel=channel_setup,
         sections=sections,
