@@ -52,10 +52,28 @@ class Progress:
             print(f"crustflow: {text}", file=sys.stderr, flush=True)
 
 
-def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = None) -> int:
-    from .export import atomic_folder, base_manifest, write_manifest
+def _client(workers: int | None, scheduler: str | None):
+    """A dask.distributed client: a local cluster of ``workers`` processes, or a running scheduler."""
+    if not workers and not scheduler:
+        return None, None
+    from dask.distributed import Client, LocalCluster
+
+    if scheduler:
+        try:
+            return Client(scheduler, timeout="20s"), None
+        except OSError as exc:
+            raise CrustflowInputError(f"--scheduler {scheduler}: no dask scheduler answers there "
+                                      f"({exc.__class__.__name__}); start one or check the address") \
+                from None
+    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                           dashboard_address=None)
+    return Client(cluster), cluster
+
+
+def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = None,
+         workers: int | None = None, scheduler: str | None = None, cog: bool = False) -> int:
+    from .export import atomic_folder
     from .scenario import load_scenario
-    from .stream import run_strips
 
     began = time.perf_counter()
     scenario = load_scenario(scenario_path)
@@ -73,46 +91,86 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
     budgets = scenario.sections is not None or scenario.regions is not None
     if budgets:
         _check_features(scenario)
-    with atomic_folder(out, scenario.input_paths) as tmp:
-        result = run_strips(scenario, tmp, strip_rows=strip_rows, stage=note,
-                            progress=not quiet and sys.stderr.isatty(),
-                            budget_fields=tmp / ".budget_fields.nc" if budgets else None)
-        written = result["written"]
-        table = None
-        if budgets:
-            note("budgets")
-            table, files = _write_budgets(result["budget_fields"], tmp, scenario.sections,
-                                          scenario.regions, scenario.title)
-            written += files
-            if result["budget_fields"].name != "fields.nc":
-                result["budget_fields"].unlink()
-        if result["figure"] is not None:
-            from .plot import flux_map
-
-            note("draw figure")
-            flux_map(result["figure"], tmp / "flux_map.png", title=scenario.title)
-            written.append("flux_map.png")
-        ensemble = None
-        if scenario.ensemble is not None:
-            note("ensemble")
-            ensemble = _run_ensemble(scenario, tmp, quiet)
-            written += ensemble["written"]
-        note("write manifest")
-        manifest = base_manifest(scenario, timings, result["provenance"])
-        manifest["grid"] = {"shape": result["shape"], "strip_rows": result["strip_rows"]}
-        if ensemble is not None:
-            manifest["ensemble"] = ensemble["manifest"]
-        write_manifest(tmp, manifest, written)
-        progress.finish()
+    client, cluster = _client(workers, scheduler)
+    try:
+        with atomic_folder(out, scenario.input_paths) as tmp:
+            result = _run_into(scenario, tmp, note, progress, timings, quiet, strip_rows, budgets,
+                               client, cog)
+    finally:
+        if client is not None:
+            client.close()
+        if cluster is not None:
+            cluster.close()
     if not quiet:
-        print(
-            f"crustflow: wrote {out.expanduser().resolve()} in {time.perf_counter() - began:.1f} s",
-            file=sys.stderr,
-        )
+        print(f"crustflow: wrote {out.expanduser().resolve()} in "
+              f"{time.perf_counter() - began:.1f} s", file=sys.stderr)
         _summary(result)
-        if table is not None:
-            _print_table(table)
+        if result.get("table") is not None:
+            _print_table(result["table"])
     return 0
+
+
+def _rows_for_chunk(scenario_path: Path, chunk: int) -> int:
+    """Strip rows holding about ``chunk`` x ``chunk`` cells of the scenario's topography grid."""
+    import rasterio
+
+    from .scenario import load_scenario
+
+    scenario = load_scenario(scenario_path)
+    try:
+        with rasterio.open(scenario.topography) as src:
+            width = src.width
+    except (rasterio.errors.RasterioError, OSError):
+        return max(1, chunk)  # the run itself reports the unreadable file
+    return max(1, chunk * chunk // width)
+
+
+def _run_into(scenario, tmp: Path, note, progress, timings, quiet, strip_rows, budgets, client,
+              cog) -> dict:
+    """Compute and write everything a run asks for into ``tmp``; return the run's result."""
+    from .export import base_manifest, write_manifest
+    from .stream import run_strips
+
+    result = run_strips(scenario, tmp, strip_rows=strip_rows, stage=note,
+                        progress=not quiet and sys.stderr.isatty(),
+                        budget_fields=tmp / ".budget_fields.nc" if budgets else None,
+                        client=client)
+    written = result["written"]
+    if cog:
+        note("cloud-optimised GeoTIFF")
+        from .export import to_cog
+
+        for name in written:
+            if name.endswith(".tif"):
+                to_cog(tmp / name)
+    result["table"] = None
+    if budgets:
+        note("budgets")
+        result["table"], files = _write_budgets(result["budget_fields"], tmp, scenario.sections,
+                                                scenario.regions, scenario.title)
+        written += files
+        if result["budget_fields"].name != "fields.nc":
+            result["budget_fields"].unlink()
+    if result["figure"] is not None:
+        from .plot import flux_map
+
+        note("draw figure")
+        flux_map(result["figure"], tmp / "flux_map.png", title=scenario.title)
+        written.append("flux_map.png")
+    ensemble = None
+    if scenario.ensemble is not None:
+        note("ensemble")
+        ensemble = _run_ensemble(scenario, tmp, quiet)
+        written += ensemble["written"]
+    note("write manifest")
+    manifest = base_manifest(scenario, timings, result["provenance"])
+    manifest["grid"] = {"shape": result["shape"], "strip_rows": result["strip_rows"],
+                        "engine": "dask.distributed" if client is not None else "local"}
+    if ensemble is not None:
+        manifest["ensemble"] = ensemble["manifest"]
+    write_manifest(tmp, manifest, written)
+    progress.finish()
+    return result
 
 
 def _check_features(scenario) -> None:
@@ -391,6 +449,17 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="N",
         help="rows per strip (default: about 0.5 M cells per strip); sets peak memory",
     )
+    run.add_argument("--chunk-size", type=int, default=None, metavar="N",
+                     help="chunk size in cells per side: strips of whole rows holding about N x N "
+                     "cells (default 724, i.e. 2^19 cells); sets peak memory per worker")
+    run.add_argument("--workers", type=int, default=None, metavar="N",
+                     help="compute strips in N local worker processes (dask.distributed)")
+    run.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                     help="compute strips on a running dask.distributed scheduler, e.g. "
+                     "tcp://10.0.0.5:8786; workers read the inputs by path (shared filesystem "
+                     "needed); only this process writes the outputs")
+    run.add_argument("--cog", action="store_true",
+                     help="write the GeoTIFFs as cloud-optimised GeoTIFFs (with overviews)")
     demo = sub.add_parser(
         "demo",
         help="run the bundled sample scenario",
@@ -477,9 +546,17 @@ def _main(argv: list[str] | None) -> int:
         return 2
     try:
         if args.command == "run":
-            if args.strip_rows is not None and args.strip_rows < 1:
-                raise CrustflowInputError("--strip-rows must be a positive whole number, e.g. 256")
-            return _run(args.scenario, args.out, args.quiet, args.strip_rows)
+            for flag, value in (("--strip-rows", args.strip_rows), ("--chunk-size", args.chunk_size),
+                                ("--workers", args.workers)):
+                if value is not None and value < 1:
+                    raise CrustflowInputError(f"{flag} must be a positive whole number, e.g. 2")
+            if args.workers and args.scheduler:
+                raise CrustflowInputError("give --workers or --scheduler, not both")
+            rows = args.strip_rows
+            if rows is None and args.chunk_size is not None:
+                rows = _rows_for_chunk(args.scenario, args.chunk_size)
+            return _run(args.scenario, args.out, args.quiet, rows, args.workers, args.scheduler,
+                        args.cog)
         if args.command == "demo":
             return _demo(args.out, args.quiet, args.scenario)
         if args.command == "budget":

@@ -236,6 +236,26 @@ class GeotiffWriter:
         self.dst.close()
 
 
+def to_cog(path: str | Path) -> None:
+    """Rewrite a tiled GeoTIFF in place as a cloud-optimised GeoTIFF (DEFLATE, overviews).
+
+    Notes
+    -----
+    GDAL's COG driver is used through ``rasterio.shutil.copy`` on the finished file (writing a COG
+    strip by strip is not possible); band description, unit and tags are carried over.
+    """
+    import rasterio
+    from rasterio.shutil import copy
+
+    path = Path(path)
+    tmp = path.with_suffix(".cog.tif")
+    with rasterio.open(path) as src:
+        predictor = 3 if src.dtypes[0].startswith("float") else 2
+    copy(path, tmp, driver="COG", compress="DEFLATE", predictor=predictor, overviews="AUTO",
+         resampling="nearest")  # GDAL's CreateCopy carries description, unit and tags over
+    tmp.replace(path)
+
+
 def netcdf_attrs(title: str, scenario_text: str = "", parameters: dict | None = None) -> dict:
     """Global attributes of ``fields.nc``."""
     from . import __version__

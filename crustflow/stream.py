@@ -75,6 +75,7 @@ def run_strips(
     stage: Callable[[str], None] | None = None,
     progress: bool = False,
     budget_fields: str | Path | None = None,
+    client=None,
 ) -> dict:
     """Compute a scenario strip by strip and write its NetCDF and GeoTIFF outputs into ``folder``.
 
@@ -94,6 +95,11 @@ def run_strips(
         Also write the variables budgets need (:data:`BUDGET_VARIABLES`) into this NetCDF file,
         unless ``fields.nc`` already holds them; the result's ``budget_fields`` names the file
         to read them from.
+    client : dask.distributed.Client, optional
+        Compute the strips on the cluster's workers (each reads the input files by path, so a
+        multi-machine cluster needs a shared filesystem); the results come back to this process,
+        which alone writes the output files, in order (no file locks are needed). Results are
+        identical to the serial run.
 
     Returns
     -------
@@ -116,7 +122,8 @@ def run_strips(
     cache = _gdal_cache_bytes(len(names) + len(BUDGET_VARIABLES), _width_of(scenario))
     with rasterio.Env(GDAL_CACHEMAX=cache):
         return _run_strips(scenario, folder, strip_rows=strip_rows, note=note, progress=progress,
-                           budget_fields=budget_fields)
+                           budget_fields=budget_fields, client=client,
+                           window=max(2, 2 * _workers(client)))
 
 
 def _width_of(scenario) -> int:
@@ -130,7 +137,8 @@ def _width_of(scenario) -> int:
         return 4096
 
 
-def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fields) -> dict:
+def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fields, client=None,
+                window=4) -> dict:
     from .export import GeotiffWriter, NetcdfWriter, netcdf_attrs
 
     sources = open_sources(scenario)
@@ -233,40 +241,24 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
             del full, full_cell, H_full, T_full
             note("compute and write")
         column = ColumnCheck()
-        for r0 in range(0, height, rows):
-            bar.update(min(height, r0 + rows) - r0)
-            r1 = min(height, r0 + rows)
-            a, b = max(0, r0 - HALO_ROWS), min(height, r1 + HALO_ROWS)
-            arrays = {key: src.read(a, b) for key, src in sources.items()}
-            checks.update({k: v[r0 - a : r1 - a] for k, v in arrays.items()})
-            H = arrays["topography"]
-            T = crust_thickness_of(
-                H,
-                p,
-                crust_thickness=arrays.get("crust_thickness"),
-                moho_depth=arrays.get("moho_depth"),
-            )
-            cell = {k: g.to_si(arrays[k]) for k, g in
-                    {**scenario.channel.grids, **scenario.load.grids}.items()}
-            cell_check.update({k: v[r0 - a : r1 - a] for k, v in cell.items()})
-            h_cell = cell.get("channel_thickness")
-            thin.update(np.where(np.isfinite(H), T, np.nan)[r0 - a : r1 - a],
-                        None if h_cell is None else h_cell[r0 - a : r1 - a])
-            if thin.cells or cell_check.bad:
-                break
-            geom = grid_geometry(x, y[a:b], topo.crs, spacing=(t.a, t.e))
-            diagnostics: dict = {}
-            si = fields_si(H, T, geom, p, wanted=wanted, setup=scenario.channel, cell=cell,
-                           load_setup=ls, diagnostics=diagnostics,
-                           p_top_filtered=None if whole_p is None else whole_p[a:b],
-                           thin_channel=None if whole_warning is None else whole_warning[a:b])
-            own = slice(r0 - a, r1 - a)
-            roof_bad, excluded = diagnostics.get("roof_bad"), diagnostics.get("excluded")
-            column.update(None if roof_bad is None else roof_bad[own],
-                          0 if excluded is None else int(excluded[own].sum()))
-            if column.roof_cells:
-                break
-            out = {n: to_practical(n, v[r0 - a : r1 - a]) for n, v in si.items()}
+
+        def merge(result: dict) -> bool:
+            """Fold a strip's checks into the run's; True when the run must stop."""
+            stats = result["stats"]
+            for key, (count, vmin, vmax) in stats["grid"].items():
+                checks.count[key] += count
+                checks.vmin[key] = min(checks.vmin[key], vmin)
+                checks.vmax[key] = max(checks.vmax[key], vmax)
+            for key, (count, example) in stats["cell_bad"].items():
+                old = cell_check.bad.get(key, (0, example))
+                cell_check.bad[key] = (old[0] + count, old[1])
+            thin.cells += stats["thin"][0]
+            thin.thinnest = min(thin.thinnest, stats["thin"][1])
+            column.update(None, stats["excluded"])
+            column.roof_cells += stats["roof"]
+            return bool(thin.cells or cell_check.bad or column.roof_cells)
+
+        def consume(r0: int, out: dict) -> None:
             writer.put(r0, out)
             for n in summary:
                 v = out[n][np.isfinite(out[n])]
@@ -284,6 +276,29 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
                 first = (-r0) % step
                 for n in figure_vars:
                     fig_rows[n].append(out[n][first::step, step // 2 :: step])
+
+        starts = list(range(0, height, rows))
+
+        def job(r0: int) -> tuple:
+            r1 = min(height, r0 + rows)
+            a, b = max(0, r0 - HALO_ROWS), min(height, r1 + HALO_ROWS)
+            return (scenario, r0, r1, wanted,
+                    None if whole_p is None else whole_p[a:b],
+                    None if whole_warning is None else whole_warning[a:b])
+
+        if client is None:
+            for r0 in starts:
+                result = compute_strip(*job(r0), sources=sources)
+                bar.update(result["rows"])
+                if merge(result):
+                    break
+                consume(r0, result["out"])
+        else:
+            for result in _distributed(client, [job(r0) for r0 in starts], window):
+                bar.update(result["rows"])
+                if merge(result):
+                    break
+                consume(result["r0"], result["out"])
         bar.close()
         writer.finish()
         checks.finish()  # on early exit these stats are partial: enough to name the likely cause
@@ -317,6 +332,93 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         for w in writers:
             w.close()
         close_sources(sources)
+
+
+def compute_strip(scenario, r0: int, r1: int, wanted, whole_p=None, whole_warning=None, *,
+                  sources=None) -> dict:
+    """Compute rows ``r0:r1`` of a scenario (with halo rows read around them).
+
+    A pure task: it opens the input grids itself unless ``sources`` is given, so it can run in a
+    worker process. Returns the strip's variables in practical units (``out``), the statistics
+    the run's input checks need (``stats``), and ``r0``/``rows``.
+    """
+    own_sources = sources is None
+    if own_sources:
+        sources = open_sources(scenario)
+    try:
+        topo = sources["topography"]
+        p = scenario.parameters
+        x, y = topo.coords()
+        t = topo.transform
+        height = topo.height
+        a, b = max(0, r0 - HALO_ROWS), min(height, r1 + HALO_ROWS)
+        own = slice(r0 - a, r1 - a)
+        arrays = {key: src.read(a, b) for key, src in sources.items()}
+        grid_stats = {}
+        for key, values in arrays.items():
+            finite = values[own][np.isfinite(values[own])]
+            grid_stats[key] = ((finite.size, float(finite.min()), float(finite.max()))
+                               if finite.size else (0, np.inf, -np.inf))
+        H = arrays["topography"]
+        T = crust_thickness_of(H, p, crust_thickness=arrays.get("crust_thickness"),
+                               moho_depth=arrays.get("moho_depth"))
+        cell = {k: g.to_si(arrays[k]) for k, g in
+                {**scenario.channel.grids, **scenario.load.grids}.items()}
+        cell_check = CellInputCheck()
+        cell_check.update({k: v[own] for k, v in cell.items()})
+        thin = ThinCrustCheck(p.channel_thickness)
+        h_cell = cell.get("channel_thickness")
+        thin.update(np.where(np.isfinite(H), T, np.nan)[own],
+                    None if h_cell is None else h_cell[own])
+        stats = {"grid": grid_stats, "cell_bad": dict(cell_check.bad),
+                 "thin": (thin.cells, thin.thinnest), "roof": 0, "excluded": 0}
+        result = {"r0": r0, "rows": r1 - r0, "stats": stats, "out": None}
+        if thin.cells or cell_check.bad:
+            return result
+        geom = grid_geometry(x, y[a:b], topo.crs, spacing=(t.a, t.e))
+        diagnostics: dict = {}
+        si = fields_si(H, T, geom, p, wanted=wanted, setup=scenario.channel, cell=cell,
+                       load_setup=scenario.load, diagnostics=diagnostics,
+                       p_top_filtered=whole_p, thin_channel=whole_warning)
+        roof_bad, excluded = diagnostics.get("roof_bad"), diagnostics.get("excluded")
+        stats["roof"] = 0 if roof_bad is None else int(np.count_nonzero(roof_bad[own]))
+        stats["excluded"] = 0 if excluded is None else int(excluded[own].sum())
+        # float32 here, as in the files: the same numbers whichever process computed them
+        result["out"] = {n: to_practical(n, v[own]).astype("float32") for n, v in si.items()}
+        return result
+    finally:
+        if own_sources:
+            close_sources(sources)
+
+
+def _workers(client) -> int:
+    if client is None:
+        return 1
+    try:
+        return max(1, len(client.scheduler_info().get("workers", {})))
+    except Exception:  # noqa: BLE001 - any scheduler hiccup: be conservative
+        return 1
+
+
+def _distributed(client, jobs: list, window: int):
+    """Run ``compute_strip`` jobs on a dask.distributed cluster, at most ``window`` in flight,
+    yielding results in row order."""
+    from collections import deque
+
+    pending: deque = deque()
+    jobs = iter(jobs)
+    for args in jobs:
+        pending.append(client.submit(compute_strip, *args, pure=False))
+        if len(pending) >= window:
+            break
+    while pending:
+        future = pending.popleft()
+        result = future.result()
+        future.release()
+        nxt = next(jobs, None)
+        if nxt is not None:
+            pending.append(client.submit(compute_strip, *nxt, pure=False))
+        yield result
 
 
 class _BackgroundWriter:
