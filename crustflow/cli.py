@@ -223,6 +223,9 @@ def _summary(result: dict) -> None:
         unit = VARIABLES[name].units
         text = f"{lo:.3g} to {hi:.3g} {unit}" if lo <= hi else "no valid cells"
         print(f"  {labels[name]:<16} {text}")
+    if result.get("skipped_variables"):
+        print(f"  note: not written for a grid this large (whole-grid steps): "
+              f"{', '.join(result['skipped_variables'])}")
     if result.get("excluded_cells"):
         print(f"  note: {result['excluded_cells']} cells excluded: the placed channel has no "
               "thickness there or leaves the crust")

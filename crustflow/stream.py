@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from .channel_setup import CellInputCheck
+from .errors import CrustflowInputError
 from .fields import (
     CELL_EXTRAS,
     VARIABLES,
@@ -44,6 +45,10 @@ CELLS_PER_STRIP = 1 << 19
 
 #: Rows of one output GeoTIFF tile (crustflow.export.GeotiffWriter writes 256 x 256 tiles).
 TILE_ROWS = 256
+
+#: Largest grid (cells) for the whole-grid steps: load filters and the thin-channel warning hold
+#: about ten float64 copies of the grid (8 GB at this size on a 24 GB machine).
+WHOLE_GRID_CELLS = 100_000_000
 
 #: Variables the volume budgets and arrow layers read.
 BUDGET_VARIABLES = ("flux_east", "flux_north", "flux_azimuth", "thickening_rate", "uplift_rate",
@@ -151,6 +156,22 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
         t = topo.transform
         height, width = topo.height, topo.width
         names = list(scenario.variables or VARIABLES)
+        skipped = []
+        if height * width > WHOLE_GRID_CELLS:
+            # Whole-grid steps hold several float64 copies of the grid in memory.
+            if scenario.load.filtered:
+                raise CrustflowInputError(
+                    f"[load] smoothing / elastic_thickness act on the whole grid, and this grid "
+                    f"has {height * width:,} cells (more than {WHOLE_GRID_CELLS:,}); resample the "
+                    "grids coarser for a filtered run, or remove the [load] filters")
+            if "thin_channel_warning" in names:
+                if scenario.variables:
+                    raise CrustflowInputError(
+                        f"thin_channel_warning needs the whole grid in memory and this grid has "
+                        f"{height * width:,} cells (more than {WHOLE_GRID_CELLS:,}); remove it "
+                        "from [output] variables or resample the grids coarser")
+                names.remove("thin_channel_warning")
+                skipped.append("thin_channel_warning")
         figure_vars = ["flux_magnitude", "flux_east", "flux_north"]
         make_figure = "figure" in scenario.formats
         wanted = set(names) | set(figure_vars if make_figure else [])
@@ -323,6 +344,7 @@ def _run_strips(scenario, folder: Path, *, strip_rows, note, progress, budget_fi
             "thin_channel_cells": None if whole_warning is None
             else int(np.nansum(whole_warning)),
             "budget_fields": side_path if budget_fields is not None else None,
+            "skipped_variables": skipped,
             "shape": [height, width],
             "strip_rows": rows,
         }
