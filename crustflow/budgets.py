@@ -30,7 +30,7 @@ import shapely
 import xarray as xr
 
 from .errors import CrustflowInputError
-from .maps import cell_areas
+from .maps import FULL_TURN, cell_areas
 from .vectors import (
     KINDS,
     FieldGrid,
@@ -194,6 +194,12 @@ def section_budgets(fields: xr.Dataset, sections, *, spacing: float | None = Non
 
     Samples outside the grid or on nodata are skipped: ``covered_fraction`` is the covered length
     over the total length.
+
+    Grids spanning all longitudes (``GridGeometry.periodic_x``): a line may cross the antimeridian
+    with continuous longitudes (170 to 190) or be split there into a MultiLineString (170 to 180,
+    -180 to -170); samples are read at their longitude reduced into the grid's range, with
+    interpolation across the seam, and lengths and azimuths are geodesic either way, so both forms
+    (and the line shifted by any whole number of turns) give the same budget.
 
     References
     ----------
@@ -360,6 +366,12 @@ def region_budgets(fields: xr.Dataset, regions, *, spacing: float | None = None)
     degrees), and fully covered cells are exact. ``area_km2`` is the geodesic polygon area
     (``pyproj.Geod.geometry_area_perimeter``); ``covered_fraction`` is capped at 1.
 
+    Grids spanning all longitudes: a polygon crossing the antimeridian may be given with
+    continuous longitudes beyond 180 (or below -180) or split at the seam into a MultiPolygon.
+    Copies shifted by whole turns are intersected with the cells, so each part is weighted on the
+    cells it covers; the boundary integral wraps as for sections. (A split polygon's seam edges
+    are walked both ways and cancel in the boundary flux, but count twice in ``length_km``.)
+
     References
     ----------
     Snyder, J. P. (1987). Map Projections: A Working Manual. USGS Professional Paper 1395.
@@ -434,11 +446,36 @@ def _outward_rings(poly):
 
 
 def _cell_shares(grid: FieldGrid, poly) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Row, column and inside share (0-1] of every cell the polygon overlaps."""
+    """Row, column and inside share (0-1] of every cell the polygon overlaps.
+
+    On a grid spanning all longitudes the polygon may lie partly or wholly outside the grid's
+    longitude range (e.g. 170 to 190 on a -180..180 grid): it is shifted by whole turns and each
+    copy intersected with the cells, so every part lands on the cells it covers once.
+    """
+    if not grid.geometry.periodic_x:
+        return _shares_in_range(grid, poly)
+    west = grid.west_edge
+    x0, _, x1, _ = poly.bounds
+    first, last = (math.floor((v - west) / FULL_TURN) for v in (x0, x1))
+    if first == last == 0:
+        return _shares_in_range(grid, poly)
+    found = [
+        _shares_in_range(grid, shapely.transform(poly, lambda xy, k=k: xy - [k * FULL_TURN, 0.0]))
+        for k in range(first, last + 1)
+    ]
+    r, c, share = (np.concatenate(v) for v in zip(*found, strict=True))
+    ncol = grid.geometry.shape[1]
+    cells, where = np.unique(r * ncol + c, return_inverse=True)
+    share = np.minimum(np.bincount(where, weights=share), 1.0)  # one cell, several copies
+    return cells // ncol, cells % ncol, share
+
+
+def _shares_in_range(grid: FieldGrid, poly) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_cell_shares` for a polygon taken in the grid's own coordinates (no wrapping)."""
     g = grid.geometry
     nrow, ncol = g.shape
     x0, y0, x1, y1 = poly.bounds
-    cols, rows, _ = grid.locate([x0, x1], [y0, y1])
+    cols, rows, _ = grid.locate([x0, x1], [y0, y1], wrap=False)
     c_lo, c_hi = (int(np.clip(np.floor(v), 0, ncol - 1)) for v in (cols.min(), cols.max() + 1))
     r_lo, r_hi = (int(np.clip(np.floor(v), 0, nrow - 1)) for v in (rows.min(), rows.max() + 1))
     hx, hy = 0.5 * abs(g.dx), 0.5 * abs(g.dy)

@@ -12,6 +12,24 @@ Grids are regular 2-D numpy arrays indexed ``[row, col] = [y, x]`` with 1-D cell
 Vectors are (east, north) components per metre in the local metric frame (grid frame for projected
 grids); azimuths are degrees clockwise from true north. Everything here is pure numpy on in-memory
 arrays, apart from the calls to pyproj for the CRS and the meridian convergence.
+
+Whole-globe grids and the poles:
+
+* Longitude wraps on a geographic grid whose columns span the full circle (``ncol |dx| = 360``
+  degrees to 1e-9 relative; :attr:`GridGeometry.periodic_x`). The first and last columns are then
+  neighbours across the antimeridian: :func:`gradient` takes central differences across the seam
+  (one-sided only next to nodata), and in :func:`divergence` the west face of the first column and
+  the east face of the last column are one face carrying one flux, so the seam adds nothing and
+  ``sum(div * area)`` over any full row still telescopes to the north/south faces. Rows never wrap
+  (a strip of rows keeps the full width, so strips equal the whole grid bit for bit), and partial
+  geographic and projected grids keep one-sided differences at their edges.
+* A pole is a point, not an edge: the parallel bounding a row is clipped to +-90 degrees and the
+  face there has zero length, so no flux crosses a pole and cell areas stay positive (a row centred
+  on a pole spans only half a step). On a row centred exactly on +-90 the east direction is
+  undefined and the east gradient is NaN (its metric scale is set to NaN: no division by zero); the
+  north gradient there, and the divergence of a flux given there, stay finite. Rows next to a pole
+  are ordinary rows with finite values. The north derivative never reaches across a pole: the edge
+  rows take one-sided differences.
 """
 
 from __future__ import annotations
@@ -55,6 +73,10 @@ FULL_TURN = 360.0
 #: Largest accepted relative departure of any coordinate step from the mean step, dimensionless.
 #: Project choice: float64 coordinates built from an affine transform are regular to ~1e-12.
 SPACING_RTOL = 1e-5
+
+#: Relative tolerance on ``ncol |dx| = 360`` degrees for a grid whose longitudes wrap around,
+#: dimensionless (project choice: well above the rounding of a float64 transform).
+PERIOD_RTOL = 1e-9
 
 #: Relative tolerance when recognising a CRS axis unit as metre or degree, dimensionless
 #: (project choice).
@@ -237,6 +259,17 @@ class GridGeometry:
     def dy(self) -> float:
         """Signed step of y from one row to the next, m or degrees."""
         return float(self.spacing[1]) if self.spacing is not None else _step(self.y)
+
+    @property
+    def periodic_x(self) -> bool:
+        """True when longitude wraps: a geographic grid whose columns span the full 360 degrees.
+
+        The test is ``|ncol |dx| - 360| <= 1e-9 * 360``; projected grids are never periodic.
+        """
+        if self.kind != "geographic":
+            return False
+        span = self.x.size * abs(self.dx)
+        return abs(span - FULL_TURN) <= PERIOD_RTOL * FULL_TURN
 
 
 def grid_geometry(x, y, crs, *, spacing: tuple[float, float] | None = None) -> GridGeometry:
@@ -433,7 +466,9 @@ def gradient(field, geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     spreads beyond the cells that depend on it, and fields linear in the grid coordinates are
     differentiated exactly.
     Geographic grids: ``(1 / (N cos phi)) df/dlambda`` and ``(1 / M) df/dphi`` (radii of curvature
-    as in :func:`cell_spacings`); the east component is NaN on a row centred on a pole.
+    as in :func:`cell_spacings`); the east component is NaN on a row centred on a pole. When the
+    grid spans all longitudes (:attr:`GridGeometry.periodic_x`) the first and last columns are
+    neighbours across the antimeridian, so they get central differences like any other column.
     Projected grids: derivatives per projected metre; the projection's scale factor is not
     corrected (at most 0.04 % inside a UTM zone).
 
@@ -447,7 +482,7 @@ def gradient(field, geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     phi = np.radians(geom.y)[:, None]
     n_rad, m_rad = _radii(phi, geom.ellipsoid)
     east_scale = np.where(np.abs(phi) >= math.radians(POLE_LATITUDE), np.nan, n_rad * np.cos(phi))
-    d_lam = _axis_derivative(f, 1, math.radians(geom.dx))
+    d_lam = _axis_derivative(f, 1, math.radians(geom.dx), periodic=geom.periodic_x)
     d_phi = _axis_derivative(f, 0, math.radians(geom.dy))
     return d_lam / east_scale, d_phi / m_rad
 
@@ -477,7 +512,10 @@ def divergence(q_east, q_north, geom: GridGeometry) -> np.ndarray:
     rounding. On the ellipsoid this is the discrete form of
     ``(1 / (N cos phi M)) (d(M q_e)/dlambda + d(N cos phi q_n)/dphi)``, including the
     converging-meridians term (uniform northward q gives ``-tan(phi) q / N``). Face lengths from
-    :func:`face_lengths`, areas from :func:`cell_areas`; longitude does not wrap around.
+    :func:`face_lengths`, areas from :func:`cell_areas`. On a grid spanning all longitudes
+    (:attr:`GridGeometry.periodic_x`) the west face of the first column and the east face of the
+    last column are the same meridian and carry the same flux (mean of the two columns), so the
+    antimeridian is an ordinary interior face; otherwise longitude does not wrap around.
 
     References
     ----------
@@ -491,7 +529,7 @@ def divergence(q_east, q_north, geom: GridGeometry) -> np.ndarray:
     qe = np.where(nodata, np.nan, qe)
     qn = np.where(nodata, np.nan, qn)
     east_len, north_len = face_lengths(geom)
-    flux_e = _face_values(qe, 1) * east_len  # (nrow, ncol + 1)
+    flux_e = _face_values(qe, 1, periodic=geom.periodic_x) * east_len  # (nrow, ncol + 1)
     flux_n = _face_values(qn, 0) * north_len  # (nrow + 1, ncol)
     net = np.sign(geom.dx) * (flux_e[:, 1:] - flux_e[:, :-1]) + np.sign(geom.dy) * (
         flux_n[1:, :] - flux_n[:-1, :]
@@ -655,7 +693,12 @@ def _meridian_arc(phi1: np.ndarray, phi2: np.ndarray, ell: Ellipsoid) -> np.ndar
     mid = 0.5 * (phi2 + phi1)
     nodes = mid[..., None] + half[..., None] * _GL_NODES
     _, m_rad = _radii(nodes, ell)
-    return half * (m_rad @ _GL_WEIGHTS)
+    # Weighted sum node by node, not a matrix product: BLAS may order the sum differently for
+    # different numbers of rows, and a strip of rows must get the whole grid's values bit for bit.
+    total = np.zeros_like(half)
+    for k, weight in enumerate(_GL_WEIGHTS):
+        total += weight * m_rad[..., k]
+    return half * total
 
 
 def _row_bounds(geom: GridGeometry) -> np.ndarray:
@@ -667,16 +710,26 @@ def _row_bounds(geom: GridGeometry) -> np.ndarray:
     return np.clip(bounds, -POLE_LATITUDE, POLE_LATITUDE)
 
 
-def _axis_derivative(f: np.ndarray, axis: int, step: float) -> np.ndarray:
-    """d f / d coordinate along ``axis``: central, or one-sided next to NaN and at the edges."""
+def _axis_derivative(
+    f: np.ndarray, axis: int, step: float, *, periodic: bool = False
+) -> np.ndarray:
+    """d f / d coordinate along ``axis``: central, or one-sided next to NaN and at the edges.
+
+    ``periodic``: the first and last cells along ``axis`` are neighbours (no edges).
+    """
 
     def part(sl: slice) -> tuple:
         return (sl, slice(None)) if axis == 0 else (slice(None), sl)
 
     out = np.empty_like(f)
     inv2, inv1 = 0.5 / step, 1.0 / step
-    prev, here, nxt = f[part(slice(None, -2))], f[part(slice(1, -1))], f[part(slice(2, None))]
-    inner = out[part(slice(1, -1))]
+    if periodic:  # one wrapped cell on each side: every cell is interior
+        g = np.concatenate([f[part(slice(-1, None))], f, f[part(slice(0, 1))]], axis=axis)
+        prev, here, nxt = g[part(slice(None, -2))], f, g[part(slice(2, None))]
+        inner = out
+    else:
+        prev, here, nxt = f[part(slice(None, -2))], f[part(slice(1, -1))], f[part(slice(2, None))]
+        inner = out[part(slice(1, -1))]
     with np.errstate(invalid="ignore"):
         # Interior: central difference where both neighbours are valid ...
         np.subtract(nxt, prev, out=inner)
@@ -686,15 +739,18 @@ def _axis_derivative(f: np.ndarray, axis: int, step: float) -> np.ndarray:
         if lone.any():
             forward = np.where(np.isnan(nxt), (here - prev) * inv1, (nxt - here) * inv1)
             np.copyto(inner, forward, where=lone)
-        # Grid edges: one-sided from the only neighbour.
-        out[part(slice(0, 1))] = (f[part(slice(1, 2))] - f[part(slice(0, 1))]) * inv1
-        out[part(slice(-1, None))] = (f[part(slice(-1, None))] - f[part(slice(-2, -1))]) * inv1
+        if not periodic:  # grid edges: one-sided from the only neighbour
+            out[part(slice(0, 1))] = (f[part(slice(1, 2))] - f[part(slice(0, 1))]) * inv1
+            out[part(slice(-1, None))] = (f[part(slice(-1, None))] - f[part(slice(-2, -1))]) * inv1
     np.copyto(out, f, where=np.isnan(f))  # nodata stays nodata
     return out
 
 
-def _face_values(q: np.ndarray, axis: int) -> np.ndarray:
-    """Values on the n + 1 faces along ``axis``: mean of valid neighbours, else the valid one."""
+def _face_values(q: np.ndarray, axis: int, *, periodic: bool = False) -> np.ndarray:
+    """Values on the n + 1 faces along ``axis``: mean of valid neighbours, else the valid one.
+
+    ``periodic``: faces 0 and n are one face between the last and the first cell (same value).
+    """
 
     def part(sl) -> tuple:
         return (sl, slice(None)) if axis == 0 else (slice(None), sl)
@@ -702,13 +758,20 @@ def _face_values(q: np.ndarray, axis: int) -> np.ndarray:
     shape = list(q.shape)
     shape[axis] += 1
     out = np.empty(shape, dtype=q.dtype)
+    if periodic:  # the seam face is an interior face between the last cell and the first
+        q = np.concatenate([q[part(slice(-1, None))], q], axis=axis)
+        inner = out[part(slice(0, -1))]
+    else:
+        inner = out[part(slice(1, -1))]
     left, right = q[part(slice(None, -1))], q[part(slice(1, None))]
-    inner = out[part(slice(1, -1))]
     np.add(left, right, out=inner)
     inner *= 0.5
     lone = np.isnan(inner)
     if lone.any():  # next to nodata: the valid neighbour's own value (NaN if neither is valid)
         np.copyto(inner, np.where(np.isnan(left), right, left), where=lone)
-    out[part(slice(0, 1))] = q[part(slice(0, 1))]
-    out[part(slice(-1, None))] = q[part(slice(-1, None))]
+    if periodic:
+        out[part(slice(-1, None))] = out[part(slice(0, 1))]
+    else:
+        out[part(slice(0, 1))] = q[part(slice(0, 1))]
+        out[part(slice(-1, None))] = q[part(slice(-1, None))]
     return out

@@ -31,7 +31,7 @@ import shapely
 import xarray as xr
 
 from .errors import CrustflowInputError
-from .maps import Ellipsoid, GridGeometry, azimuth, cell_spacings, grid_geometry
+from .maps import FULL_TURN, Ellipsoid, GridGeometry, azimuth, cell_spacings, grid_geometry
 
 __all__ = [
     "FieldGrid",
@@ -82,6 +82,9 @@ class FieldGrid:
     -----
     Cell centres sit at ``geometry.x[j]``, ``geometry.y[i]``; a point's fractional column and row
     are ``(x - x0) / dx`` and ``(y - y0) / dy`` with the signed steps, so rows may run either way.
+    On a grid spanning all longitudes (``geometry.periodic_x``) a point's longitude is first
+    reduced by whole turns into the grid's own 360-degree range (lon 185 reads the grid at -175 on
+    a -180..180 grid), and interpolation continues across the antimeridian.
     """
 
     fields: xr.Dataset
@@ -125,13 +128,31 @@ class FieldGrid:
             )
         return np.asarray(self.fields[name].transpose("y", "x").values, dtype="float64")
 
-    def locate(self, px, py) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Fractional column and row of points, and whether each lies within the grid's outer edge."""
+    @property
+    def west_edge(self) -> float:
+        """Western outer edge: longitude in degrees (geographic grids) or smallest x in m."""
         g = self.geometry
-        col = (np.asarray(px, dtype=float) - g.x[0]) / g.dx
+        return float(g.x.min()) - 0.5 * abs(g.dx)
+
+    def locate(self, px, py, *, wrap: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Fractional column and row of points, and whether each lies within the grid's outer edge.
+
+        On a grid spanning all longitudes, ``wrap`` (default) first reduces longitudes by whole
+        turns into the grid's range, so every latitude inside the grid is inside; with
+        ``wrap=False`` columns are taken as given (no reduction).
+        """
+        g = self.geometry
+        px = np.asarray(px, dtype=float)
+        periodic = wrap and g.periodic_x
+        if periodic:
+            west = self.west_edge
+            px = west + np.mod(px - west, FULL_TURN)
+        col = (px - g.x[0]) / g.dx
         row = (np.asarray(py, dtype=float) - g.y[0]) / g.dy
         nrow, ncol = g.shape
-        inside = (col >= -0.5) & (col <= ncol - 0.5) & (row >= -0.5) & (row <= nrow - 0.5)
+        inside = (row >= -0.5) & (row <= nrow - 0.5)
+        if not periodic:
+            inside &= (col >= -0.5) & (col <= ncol - 0.5)
         return col, row, inside
 
     def sample(self, arrays, px, py) -> tuple[list[np.ndarray], np.ndarray]:
@@ -157,23 +178,33 @@ class FieldGrid:
         Bilinear interpolation between the four surrounding cell centres, with the weights of
         invalid corners dropped and the rest renormalised (the containing cell always keeps a weight
         of at least 1/4). In the half-cell band inside the grid's outer edge the edge value is
-        continued outward.
+        continued outward. On a grid spanning all longitudes the first and last columns are
+        neighbours: points between their centres interpolate across the antimeridian.
         """
         nrow, ncol = self.geometry.shape
         col, row, inside = self.locate(px, py)
         valid = np.logical_and.reduce([np.isfinite(a) for a in arrays])
-        home_c = np.clip(np.rint(col), 0, ncol - 1).astype(int)
-        home_r = np.clip(np.rint(row), 0, nrow - 1).astype(int)
-        covered = inside & valid[home_r, home_c]
-        cc, rr = np.clip(col, 0, ncol - 1), np.clip(row, 0, nrow - 1)
-        c0 = np.minimum(np.floor(cc).astype(int), ncol - 2)
+        rr = np.clip(row, 0, nrow - 1)
         r0 = np.minimum(np.floor(rr).astype(int), nrow - 2)
-        tc, tr = cc - c0, rr - r0
+        tr = rr - r0
+        home_r = np.clip(np.rint(row), 0, nrow - 1).astype(int)
+        if self.geometry.periodic_x:
+            left = np.floor(col)
+            c0 = np.mod(left, ncol).astype(int)
+            c1 = np.mod(left + 1, ncol).astype(int)
+            tc = col - left
+            home_c = np.mod(np.rint(col), ncol).astype(int)
+        else:
+            cc = np.clip(col, 0, ncol - 1)
+            c0 = np.minimum(np.floor(cc).astype(int), ncol - 2)
+            c1, tc = c0 + 1, cc - c0
+            home_c = np.clip(np.rint(col), 0, ncol - 1).astype(int)
+        covered = inside & valid[home_r, home_c]
         corners = [
             (r0, c0, (1 - tr) * (1 - tc)),
-            (r0, c0 + 1, (1 - tr) * tc),
+            (r0, c1, (1 - tr) * tc),
             (r0 + 1, c0, tr * (1 - tc)),
-            (r0 + 1, c0 + 1, tr * tc),
+            (r0 + 1, c1, tr * tc),
         ]
         weight = np.zeros(col.shape)
         sums = [np.zeros(col.shape) for _ in arrays]
