@@ -36,19 +36,15 @@ LABEL_SIZE = 7
 
 
 def _pyplot():
-    import matplotlib
+    from .plot import pyplot
 
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
-
-    return plt
+    return pyplot()
 
 
 def _caution(fig, text: str) -> None:
-    from .fields import CAUTION
+    from .plot import add_caution
 
-    fig.get_layout_engine().set(rect=(0.0, FOOT_SHARE, 1.0, 1.0 - FOOT_SHARE))
-    fig.text(0.01, 0.005, f"{text} {CAUTION}", fontsize=6, ha="left", va="bottom", wrap=True)
+    add_caution(fig, text, foot=FOOT_SHARE)
 
 
 def volume_label(value: float) -> str:

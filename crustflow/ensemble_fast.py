@@ -13,11 +13,12 @@ References
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
 
-from .channel import channel_flow
+from .channel import ChannelSolution, channel_flow
 from .ensemble_spec import EnsembleSpec
 from .fields import crust_thickness_of
 from .maps import divergence, gradient
@@ -145,17 +146,8 @@ LINEAR = (
     "channel_thickness",
 )
 #: Variables of the one-cell solution computed by crustflow.channel.channel_flow.
-SOLUTION = (
-    "mean_velocity_east",
-    "mean_velocity_north",
-    "peak_speed",
-    "peak_speed_height",
-    "upper_wall_drag_east",
-    "upper_wall_drag_north",
-    "lower_wall_drag_east",
-    "lower_wall_drag_north",
-    "backflow",
-    "wall_driven_share",
+SOLUTION = tuple(
+    f.name for f in dataclasses.fields(ChannelSolution) if not f.name.startswith("flux_")
 )
 #: Everything the fast path computes; other variables need the fallback.
 FAST_VARIABLES = LINEAR + SOLUTION + ("flux_magnitude",)

@@ -372,17 +372,15 @@ def write_tables(folder, samples, member_budgets, spec) -> list[str]:
 
 
 def _pyplot():
-    import matplotlib
+    from .plot import pyplot
 
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
-
-    return plt
+    return pyplot()
 
 
 def _foot(fig, text: str) -> None:
-    fig.get_layout_engine().set(rect=(0.0, FOOT_SHARE, 1.0, 1.0 - FOOT_SHARE))
-    fig.text(0.01, 0.005, f"{text} {CAUTION}", fontsize=6, ha="left", va="bottom", wrap=True)
+    from .plot import add_caution
+
+    add_caution(fig, text, foot=FOOT_SHARE)
 
 
 def ensemble_map(

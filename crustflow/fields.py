@@ -8,11 +8,13 @@ strips) call it, so they agree bit for bit.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
 
 from . import load
+from .channel import ChannelSolution
 from .channel_setup import ChannelSetup, solve_cells
 from .constants import SECONDS_PER_YEAR
 from .errors import CrustflowInputError
@@ -104,11 +106,8 @@ CAUTION = (
 
 #: Variables that need the full one-cell solution, not just the flux.
 CELL_EXTRAS = {
-    "mean_velocity_east", "mean_velocity_north", "peak_speed", "peak_speed_height",
-    "upper_wall_drag_east", "upper_wall_drag_north", "lower_wall_drag_east",
-    "lower_wall_drag_north", "backflow", "wall_driven_share", "effective_viscosity",
-    "solver_converged",
-}
+    f.name for f in dataclasses.fields(ChannelSolution) if not f.name.startswith("flux_")
+} | {"effective_viscosity", "solver_converged"}
 
 
 def crust_thickness_of(

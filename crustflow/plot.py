@@ -12,7 +12,7 @@ import numpy as np
 import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
-__all__ = ["flux_map", "arrow_stride", "magnitude_image"]
+__all__ = ["flux_map", "arrow_stride", "magnitude_image", "pyplot", "add_caution"]
 
 #: Share of the figure's height kept free at the foot for the caution line.
 FOOT_SHARE = 0.05
@@ -24,6 +24,25 @@ ARROWS_ACROSS = 25
 def arrow_stride(shape: tuple[int, int], across: int = ARROWS_ACROSS) -> int:
     """Stride in cells between arrows so that about ``across`` arrows span the wider side."""
     return max(1, int(round(max(shape) / across)))
+
+
+def pyplot():
+    """matplotlib.pyplot on the non-interactive Agg backend (figures are written to files)."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def add_caution(fig, text: str = "", *, foot: float = FOOT_SHARE) -> None:
+    """Reserve the figure's foot and write ``text`` followed by the model caution there."""
+    from .fields import CAUTION
+
+    fig.get_layout_engine().set(rect=(0.0, foot, 1.0, 1.0 - foot))
+    fig.text(0.01, 0.005, f"{text} {CAUTION}".strip(), fontsize=6, ha="left", va="bottom",
+             wrap=True)
 
 
 def magnitude_image(fig, ax, x, y, magnitude, label="channel flux per unit width (m²/yr)"):
@@ -71,12 +90,7 @@ def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi:
     -------
     Path
     """
-    import matplotlib
-
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
-
-    from .fields import CAUTION
+    plt = pyplot()
 
     crs = ds.rio.crs
     geographic = bool(crs is not None and crs.is_geographic)
@@ -110,16 +124,7 @@ def flux_map(ds: xr.Dataset, path: str | Path, *, title: str | None = None, dpi:
     ax.set_ylabel("latitude (degrees)" if geographic else f"y ({unit})")
     ax.set_aspect(1.0 / np.cos(np.deg2rad(np.nanmean(y))) if geographic else "equal")
     ax.set_title(title or ds.attrs.get("title", "crustflow"))
-    fig.get_layout_engine().set(rect=(0.0, FOOT_SHARE, 1.0, 1.0 - FOOT_SHARE))  # room for the caution
-    fig.text(
-        0.01,
-        0.005,
-        "Arrows: flux direction. " + CAUTION,
-        fontsize=6,
-        ha="left",
-        va="bottom",
-        wrap=True,
-    )
+    add_caution(fig, "Arrows: flux direction.")
     path = Path(path)
     fig.savefig(path, dpi=dpi)
     plt.close(fig)

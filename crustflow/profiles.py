@@ -195,13 +195,11 @@ def velocity_profiles(scenario, sites, *, samples: int = PROFILE_SAMPLES):
 
 def write_profile_outputs(ds, folder) -> list[str]:
     """``profile_<label>.csv`` and ``profile_<label>.png`` for every site; returns file names."""
-    import matplotlib
-
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
     import pandas as pd
 
-    from .fields import CAUTION
+    from .plot import add_caution, pyplot
+
+    plt = pyplot()
 
     folder = Path(folder)
     written = []
@@ -240,8 +238,7 @@ def write_profile_outputs(ds, folder) -> list[str]:
         qe, qn = float(s.flux_east), float(s.flux_north)
         fig.suptitle(f"{site}: flux ({qe:.4g}, {qn:.4g}) m²/yr east, north; walls at 0 and "
                      f"{hk[-1]:.3g} km")
-        fig.get_layout_engine().set(rect=(0.0, 0.05, 1.0, 0.95))
-        fig.text(0.01, 0.005, CAUTION, fontsize=6, ha="left", va="bottom", wrap=True)
+        add_caution(fig)
         fig.savefig(folder / f"profile_{label}.png", dpi=120)
         plt.close(fig)
         written += [f"profile_{label}.csv", f"profile_{label}.png"]
