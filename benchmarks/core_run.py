@@ -9,7 +9,7 @@ Steps:
 
 1. Build a synthetic projected scenario in ``benchmarks/_work/n<SIZE>/`` (git-ignored), or reuse it:
    topography and crustal thickness as float32 tiled DEFLATE GeoTIFFs in EPSG:32625 at 250 m cells.
-   The values are the invented Varnessa Plateau of :mod:`crustflow.samples` (800 x 600 km) stretched
+   The values are the invented Varnessa Plateau of :mod:`crustflow.samples.plateau` (800 x 600 km) stretched
    onto the grid's extent, so a smaller ``--size`` gives the same landscape with steeper slopes.
    Two scenario files: ``scenario.toml`` (flux_east, flux_north, thickening_rate; GeoTIFF only) and
    ``scenario_full.toml`` (no ``[output]`` table: every variable, NetCDF, GeoTIFF and the figure).
@@ -83,8 +83,8 @@ viscosity = "1e19 Pa*s"
 
 #: Imports what ``crustflow run`` imports; prints the file of every crustflow module loaded.
 SOURCE_PROBE = (
-    "import sys, crustflow, crustflow.cli, crustflow.model, crustflow.export, crustflow.grids, "
-    "crustflow.scenario, crustflow.plot\n"
+    "import sys, crustflow, crustflow.cli, crustflow.engine.api, crustflow.io.writers, crustflow.io.grids, "
+    "crustflow.scenario.document, crustflow.figures.common\n"
     "print(' '.join(m.__file__ for n, m in sys.modules.items() "
     "if n.split('.')[0] == 'crustflow' and getattr(m, '__file__', None)))"
 )
@@ -102,7 +102,7 @@ formats = ["geotiff"]
 
 def _sample_coordinates(x, y, size):
     """Map grid coordinates onto the sample plateau's 800 x 600 km region."""
-    from crustflow.samples import SAMPLE_BOUNDS
+    from crustflow.samples.plateau import SAMPLE_BOUNDS
 
     west, south, east, north = SAMPLE_BOUNDS
     extent = size * CELL
@@ -116,16 +116,23 @@ def build_scenario(size: int, folder: Path) -> dict[str, Path]:
     import rasterio
     from rasterio.transform import from_origin
 
-    from crustflow.samples import plateau_crust_thickness, plateau_elevation
+    from crustflow.samples.plateau import plateau_crust_thickness, plateau_elevation
 
     folder.mkdir(parents=True, exist_ok=True)
-    paths = {"topography": folder / "topography.tif",
-             "crust_thickness": folder / "crust_thickness.tif",
-             "three": folder / "scenario.toml", "full": folder / "scenario_full.toml"}
+    paths = {
+        "topography": folder / "topography.tif",
+        "crust_thickness": folder / "crust_thickness.tif",
+        "three": folder / "scenario.toml",
+        "full": folder / "scenario_full.toml",
+    }
     stamp_path = folder / "grids.json"
     stamp = {"version": GRID_VERSION, "size": size, "cell_m": CELL, "crs": CRS}
-    fresh = (stamp_path.is_file() and json.loads(stamp_path.read_text()) == stamp
-             and paths["topography"].is_file() and paths["crust_thickness"].is_file())
+    fresh = (
+        stamp_path.is_file()
+        and json.loads(stamp_path.read_text()) == stamp
+        and paths["topography"].is_file()
+        and paths["crust_thickness"].is_file()
+    )
     if fresh:
         print(f"reusing grids in {folder}")
     else:
@@ -135,13 +142,27 @@ def build_scenario(size: int, folder: Path) -> dict[str, Path]:
         west = CENTRE_EASTING - size * CELL / 2
         transform = from_origin(west, NORTH_EDGE, CELL, CELL)
         block = min(BLOCK, 16 * max(1, size // 16))
-        profile = dict(driver="GTiff", width=size, height=size, count=1, dtype="float32", crs=CRS,
-                       transform=transform, nodata=float("nan"), compress="deflate", predictor=3,
-                       tiled=True, blockxsize=block, blockysize=block)
+        profile = dict(
+            driver="GTiff",
+            width=size,
+            height=size,
+            count=1,
+            dtype="float32",
+            crs=CRS,
+            transform=transform,
+            nodata=float("nan"),
+            compress="deflate",
+            predictor=3,
+            tiled=True,
+            blockxsize=block,
+            blockysize=block,
+        )
         xs = west + CELL * (np.arange(size) + 0.5)
         strip = 2 * block
-        grids = (("topography", plateau_elevation, "surface elevation above sea level"),
-                 ("crust_thickness", plateau_crust_thickness, "crustal thickness, surface to Moho"))
+        grids = (
+            ("topography", plateau_elevation, "surface elevation above sea level"),
+            ("crust_thickness", plateau_crust_thickness, "crustal thickness, surface to Moho"),
+        )
         for key, func, description in grids:
             tmp = paths[key].with_name(paths[key].name + ".partial")
             with rasterio.open(tmp, "w", **profile) as dst:
@@ -156,8 +177,9 @@ def build_scenario(size: int, folder: Path) -> dict[str, Path]:
             tmp.replace(paths[key])
         stamp_path.write_text(json.dumps(stamp) + "\n")
         print(f"  built in {time.perf_counter() - began:.1f} s")
-    paths["three"].write_text(SCENARIO.format(size=size, suffix=", three variables",
-                                              output=OUTPUT_THREE))
+    paths["three"].write_text(
+        SCENARIO.format(size=size, suffix=", three variables", output=OUTPUT_THREE)
+    )
     paths["full"].write_text(SCENARIO.format(size=size, suffix=", full output", output=""))
     return paths
 
@@ -217,8 +239,12 @@ def measure(cmd: list[str], *, env: dict | None = None) -> Sample:
             err.seek(0)
             tail = err.read().decode(errors="replace").strip()[-2000:]
             raise RuntimeError(f"exit status {proc.returncode}: {' '.join(cmd)}\n{tail}")
-    return Sample(wall_s=wall, peak_tree_mb=peak["rss"] / 2**20, maxrss_mb=usage.ru_maxrss / 1024,
-                  samples=peak["n"])
+    return Sample(
+        wall_s=wall,
+        peak_tree_mb=peak["rss"] / 2**20,
+        maxrss_mb=usage.ru_maxrss / 1024,
+        samples=peak["n"],
+    )
 
 
 def _stages(out: Path) -> dict:
@@ -274,12 +300,15 @@ def code_identity(source: Path) -> str:
         where = os.path.relpath(source, REPO) if REPO in source.resolve().parents else source
         return f"sources from {where}, sha256 {source_digest(source)}"
     try:
-        commit = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"],
-                                capture_output=True, text=True, timeout=10).stdout.strip()
+        commit = subprocess.run(
+            ["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"],
+            capture_output=True,
+            text=True,
+            timeout=10,
+        ).stdout.strip()
     except (OSError, subprocess.SubprocessError):
         commit = ""
-    return (f"working tree at commit {commit or 'unknown'}, sources sha256 "
-            f"{source_digest(source)}")
+    return f"working tree at commit {commit or 'unknown'}, sources sha256 {source_digest(source)}"
 
 
 # --------------------------------------------------------------------------------------------------
@@ -302,7 +331,9 @@ def agreement(paths: dict[str, Path], hand_out: Path, crustflow_out: Path) -> st
     inner[1:-1, 1:-1] = True
     for di in (-1, 0, 1):
         for dj in (-1, 0, 1):
-            inner[1:-1, 1:-1] &= land[1 + di:land.shape[0] - 1 + di, 1 + dj:land.shape[1] - 1 + dj]
+            inner[1:-1, 1:-1] &= land[
+                1 + di : land.shape[0] - 1 + di, 1 + dj : land.shape[1] - 1 + dj
+            ]
     del topo, land
     parts = []
     for name in ("flux_east", "flux_north"):
@@ -311,8 +342,11 @@ def agreement(paths: dict[str, Path], hand_out: Path, crustflow_out: Path) -> st
         scale = np.abs(a[ok]).max() if ok.any() else 0.0
         rel = np.abs(a[ok] - b[ok]).max() / scale if scale else float("nan")
         parts.append(f"{name} {rel:.1e}")
-    return ("max |hand - crustflow| / max |hand| on inland cells: " + ", ".join(parts)
-            + f" ({int(inner.sum()):,} cells)")
+    return (
+        "max |hand - crustflow| / max |hand| on inland cells: "
+        + ", ".join(parts)
+        + f" ({int(inner.sum()):,} cells)"
+    )
 
 
 # --------------------------------------------------------------------------------------------------
@@ -338,14 +372,18 @@ class Row:
 
 
 def table(rows: list[Row], cells: int, repeat: int) -> list[str]:
-    lines = [f"| run | wall time (s, best of {repeat}) | cells per second | peak memory (MB) "
-             "| largest process max RSS (MB) | every repeat (s) |",
-             "|---|---:|---:|---:|---:|---:|"]
+    lines = [
+        f"| run | wall time (s, best of {repeat}) | cells per second | peak memory (MB) "
+        "| largest process max RSS (MB) | every repeat (s) |",
+        "|---|---:|---:|---:|---:|---:|",
+    ]
     for row in rows:
         best = row.best
         every = ", ".join(f"{s.wall_s:.2f}" for s in row.runs)
-        lines.append(f"| {row.name} | {best.wall_s:.2f} | {cells / best.wall_s:,.0f} "
-                     f"| {row.peak_tree_mb:,.0f} | {row.maxrss_mb:,.0f} | {every} |")
+        lines.append(
+            f"| {row.name} | {best.wall_s:.2f} | {cells / best.wall_s:,.0f} "
+            f"| {row.peak_tree_mb:,.0f} | {row.maxrss_mb:,.0f} | {every} |"
+        )
     return lines
 
 
@@ -368,12 +406,22 @@ def stage_line(row: Row) -> str:
         return f"{row.name}: no stage times in run.json"
     total = sum(stages.values())
     parts = ", ".join(f"{k} {v:.2f}" for k, v in stages.items())
-    return (f"{row.name}: {parts} s (sum {total:.2f} s of {row.best.wall_s:.2f} s wall; the rest "
-            "is start-up, imports and whatever run.json does not time)")
+    return (
+        f"{row.name}: {parts} s (sum {total:.2f} s of {row.best.wall_s:.2f} s wall; the rest "
+        "is start-up, imports and whatever run.json does not time)"
+    )
 
 
-def section(label: str, size: int, repeat: int, info: dict, rows: list[Row], agree: str,
-            note: str, source: Path) -> str:
+def section(
+    label: str,
+    size: int,
+    repeat: int,
+    info: dict,
+    rows: list[Row],
+    agree: str,
+    note: str,
+    source: Path,
+) -> str:
     today = datetime.now(UTC).date().isoformat()
     command = f"python benchmarks/core_run.py --write-results --label {label}"
     if size != 4000:
@@ -382,16 +430,23 @@ def section(label: str, size: int, repeat: int, info: dict, rows: list[Row], agr
         command += f" --repeat {repeat}"
     if source != REPO:
         command += f" --source {os.path.relpath(source, REPO)}"
-    lines = [f"<!-- core_run:{label}:begin -->",
-             f"## core_run: {label} ({size:,} x {size:,} cells, {size * size / 1e6:g} M)", "",
-             f"Recorded {today} with `{command}`.", ""]
+    lines = [
+        f"<!-- core_run:{label}:begin -->",
+        f"## core_run: {label} ({size:,} x {size:,} cells, {size * size / 1e6:g} M)",
+        "",
+        f"Recorded {today} with `{command}`.",
+        "",
+    ]
     if note:
         lines += [note, ""]
     lines += ["Machine: " + "; ".join(f"{k} {v}" for k, v in info.items()) + ".", ""]
     lines += table(rows, size * size, repeat) + [""]
-    lines += ["Peak memory: highest sum of RSS over the process tree, sampled with psutil every "
-              f"{POLL_SECONDS * 1000:.0f} ms, largest of the repeats. Largest-process max RSS: the "
-              "kernel's high-water mark (`os.wait4` rusage) of the biggest single process.", ""]
+    lines += [
+        "Peak memory: highest sum of RSS over the process tree, sampled with psutil every "
+        f"{POLL_SECONDS * 1000:.0f} ms, largest of the repeats. Largest-process max RSS: the "
+        "kernel's high-water mark (`os.wait4` rusage) of the biggest single process.",
+        "",
+    ]
     lines += ["Targets:", ""] + targets(rows[0], rows[1]) + [""]
     lines += ["Where the time goes (crustflow stage times from run.json, fastest repeat):", ""]
     lines += [f"- {stage_line(row)}" for row in rows[1:]] + [""]
@@ -400,11 +455,16 @@ def section(label: str, size: int, repeat: int, info: dict, rows: list[Row], agr
 
 
 def write_results(text: str, label: str) -> None:
-    head = ("# Benchmark results\n\nWritten by the benchmark scripts in this folder with "
-            "`--write-results`; see [README.md](README.md) for what each one measures.\n\n")
+    head = (
+        "# Benchmark results\n\nWritten by the benchmark scripts in this folder with "
+        "`--write-results`; see [README.md](README.md) for what each one measures.\n\n"
+    )
     old = RESULTS.read_text() if RESULTS.is_file() else head
-    pattern = re.compile(rf"<!-- core_run:{re.escape(label)}:begin -->.*?"
-                         rf"<!-- core_run:{re.escape(label)}:end -->\n?", re.S)
+    pattern = re.compile(
+        rf"<!-- core_run:{re.escape(label)}:begin -->.*?"
+        rf"<!-- core_run:{re.escape(label)}:end -->\n?",
+        re.S,
+    )
     if pattern.search(old):
         new = pattern.sub(lambda _: text, old)
     else:
@@ -417,19 +477,28 @@ def write_results(text: str, label: str) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
-                                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser = argparse.ArgumentParser(
+        description=__doc__.split("\n\n")[0], formatter_class=argparse.RawDescriptionHelpFormatter
+    )
     parser.add_argument("--size", type=int, default=4000, help="cells per side (default 4000)")
     parser.add_argument("--repeat", type=int, default=2, help="runs of each command (default 2)")
-    parser.add_argument("--write-results", action="store_true",
-                        help="write the results into benchmarks/RESULTS.md")
-    parser.add_argument("--label", default="latest",
-                        help="name of the RESULTS.md section; the same label replaces its section, "
-                        "a new one adds a section (default: latest)")
+    parser.add_argument(
+        "--write-results", action="store_true", help="write the results into benchmarks/RESULTS.md"
+    )
+    parser.add_argument(
+        "--label",
+        default="latest",
+        help="name of the RESULTS.md section; the same label replaces its section, "
+        "a new one adds a section (default: latest)",
+    )
     parser.add_argument("--note", default="", help="a sentence to put in the RESULTS.md section")
-    parser.add_argument("--source", type=Path, default=REPO,
-                        help="run crustflow from the package in this folder (through PYTHONPATH), "
-                        "e.g. a snapshot made with `git archive`; default: this repository")
+    parser.add_argument(
+        "--source",
+        type=Path,
+        default=REPO,
+        help="run crustflow from the package in this folder (through PYTHONPATH), "
+        "e.g. a snapshot made with `git archive`; default: this repository",
+    )
     args = parser.parse_args(argv)
     if args.size < 16 or args.repeat < 1:
         parser.error("--size must be at least 16 and --repeat at least 1")
@@ -441,16 +510,23 @@ def main(argv: list[str] | None = None) -> int:
         parser.error(f"--source {source} holds no crustflow package")
     env = None
     if source != REPO:
-        env = dict(os.environ, PYTHONPATH=os.pathsep.join(
-            [str(source), *filter(None, [os.environ.get("PYTHONPATH")])]))
+        env = dict(
+            os.environ,
+            PYTHONPATH=os.pathsep.join(
+                [str(source), *filter(None, [os.environ.get("PYTHONPATH")])]
+            ),
+        )
         # The editable install falls back to this repository for any module the source folder
         # lacks: import what a run imports and insist that every crustflow module comes from there.
-        check = subprocess.run([sys.executable, "-P", "-c", SOURCE_PROBE], env=env,
-                               capture_output=True, text=True)
+        check = subprocess.run(
+            [sys.executable, "-P", "-c", SOURCE_PROBE], env=env, capture_output=True, text=True
+        )
         strays = [f for f in check.stdout.split() if not f.startswith(str(source) + os.sep)]
         if check.returncode != 0 or strays:
-            parser.error(f"--source {source}: crustflow modules come from elsewhere or fail to "
-                         f"import: {' '.join(strays) or check.stderr.strip()[-500:]}")
+            parser.error(
+                f"--source {source}: crustflow modules come from elsewhere or fail to "
+                f"import: {' '.join(strays) or check.stderr.strip()[-500:]}"
+            )
     digest_before = source_digest(source)
     info = machine(source)
     print("machine:")
@@ -463,16 +539,35 @@ def main(argv: list[str] | None = None) -> int:
         crustflow_cmd = "crustflow"
     outs = {"hand": folder / "out_hand", "three": folder / "out_three", "full": folder / "out_full"}
     commands = {
-        "hand": [sys.executable, str(HAND_SCRIPT), str(paths["topography"]),
-                 str(paths["crust_thickness"]), str(outs["hand"])],
-        "three": [str(crustflow_cmd), "run", str(paths["three"]), "--out", str(outs["three"]),
-                  "--quiet"],
-        "full": [str(crustflow_cmd), "run", str(paths["full"]), "--out", str(outs["full"]),
-                 "--quiet"],
+        "hand": [
+            sys.executable,
+            str(HAND_SCRIPT),
+            str(paths["topography"]),
+            str(paths["crust_thickness"]),
+            str(outs["hand"]),
+        ],
+        "three": [
+            str(crustflow_cmd),
+            "run",
+            str(paths["three"]),
+            "--out",
+            str(outs["three"]),
+            "--quiet",
+        ],
+        "full": [
+            str(crustflow_cmd),
+            "run",
+            str(paths["full"]),
+            "--out",
+            str(outs["full"]),
+            "--quiet",
+        ],
     }
-    names = {"hand": "hand script (numpy + rasterio, 3 variables)",
-             "three": "crustflow run, 3 variables, GeoTIFF",
-             "full": "crustflow run, all variables, NetCDF + GeoTIFF + figure"}
+    names = {
+        "hand": "hand script (numpy + rasterio, 3 variables)",
+        "three": "crustflow run, 3 variables, GeoTIFF",
+        "full": "crustflow run, all variables, NetCDF + GeoTIFF + figure",
+    }
     runs: dict[str, list[Sample]] = {key: [] for key in commands}
     for i in range(args.repeat):
         for key, cmd in commands.items():
@@ -481,12 +576,16 @@ def main(argv: list[str] | None = None) -> int:
             if key != "hand":
                 sample.stages = _stages(outs[key])
             runs[key].append(sample)
-            print(f"{sample.wall_s:.2f} s, peak {sample.peak_tree_mb:,.0f} MB "
-                  f"(max RSS {sample.maxrss_mb:,.0f} MB, {sample.samples} samples)", flush=True)
+            print(
+                f"{sample.wall_s:.2f} s, peak {sample.peak_tree_mb:,.0f} MB "
+                f"(max RSS {sample.maxrss_mb:,.0f} MB, {sample.samples} samples)",
+                flush=True,
+            )
 
     if source_digest(source) != digest_before:
-        warning = ("crustflow sources changed while the benchmark ran: the runs may mix code "
-                   "versions")
+        warning = (
+            "crustflow sources changed while the benchmark ran: the runs may mix code versions"
+        )
         print(f"WARNING: {warning}")
         args.note = " ".join(filter(None, [args.note, f"**Warning:** {warning}."]))
     rows = [Row(names[key], runs[key]) for key in commands]

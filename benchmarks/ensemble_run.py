@@ -16,7 +16,7 @@ Cases (each run as a fresh subprocess that builds nothing, only runs ``run_ensem
    (20) members on a ``--fallback-size`` (300) grid, and
 3. the fast path on that same small case, so the cost per member of both engines can be compared.
 
-The grids are the invented plateau of :mod:`crustflow.samples` (800 x 600 km) stretched onto the
+The grids are the invented plateau of :mod:`crustflow.samples.plateau` (800 x 600 km) stretched onto the
 grid's extent (800 m cells at 1000 x 1000), float32 tiled DEFLATE GeoTIFFs in EPSG:32625, built in
 ``benchmarks/_work/ensemble_n<SIZE>/`` (git-ignored) and reused. Wall time (start to exit, imports
 included) and peak memory of the process tree (psutil, summed RSS every 20 ms) are measured with
@@ -90,7 +90,7 @@ import json, sys, time
 began = time.perf_counter()
 from pathlib import Path
 import crustflow
-from crustflow.ensemble import parse_ensemble, run_ensemble
+from crustflow.analyses.ensemble.run import parse_ensemble, run_ensemble
 job = json.loads(Path(sys.argv[1]).read_text())
 scenario = crustflow.scenario_from_dict(job["scenario"], base_dir=job["folder"])
 spec = parse_ensemble(job["ensemble"], scenario.parameters)
@@ -107,7 +107,7 @@ def build_grids(size: int) -> Path:
     import rasterio
     from rasterio.transform import from_origin
 
-    from crustflow.samples import SAMPLE_BOUNDS, plateau_crust_thickness, plateau_elevation
+    from crustflow.samples.plateau import SAMPLE_BOUNDS, plateau_crust_thickness, plateau_elevation
 
     folder = WORK / f"ensemble_n{size}"
     folder.mkdir(parents=True, exist_ok=True)

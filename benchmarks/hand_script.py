@@ -32,8 +32,17 @@ def read(path):
 
 
 def write(path, data, profile):
-    profile = dict(profile, dtype="float32", count=1, nodata=float("nan"), compress="deflate",
-                   predictor=3, tiled=True, blockxsize=256, blockysize=256)
+    profile = dict(
+        profile,
+        dtype="float32",
+        count=1,
+        nodata=float("nan"),
+        compress="deflate",
+        predictor=3,
+        tiled=True,
+        blockxsize=256,
+        blockysize=256,
+    )
     with rasterio.open(path, "w", **profile) as dst:
         dst.write(data.astype("float32"), 1)
 

@@ -6,7 +6,7 @@
 Cases (synthetic cells, invented for timing only; SI inside):
 
 1. Newtonian channel, temperature linear across it: Gauss-Legendre fluidity moments of an Arrhenius
-   law (16 nodes) and the flux and wall stress from ``crustflow.channel.flux_from_moments``.
+   law (16 nodes) and the flux and wall stress from ``crustflow.physics.channel.flux_from_moments``.
 2. Power-law channel, n = 3 (wet anorthite, Rybacki & Dresen 2000), uniform temperature, upper
    wall moving at 60-120 degrees to the drive: exact polynomial integrals and Newton.
 3. The same with the temperature linear across the channel (prefactor profile).
@@ -35,9 +35,9 @@ import time  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from crustflow.channel import flux_from_moments  # noqa: E402
-from crustflow.flowlaws import flow_law, newtonian_flow_law, simple_shear_prefactor  # noqa: E402
-from crustflow.rheology import (  # noqa: E402
+from crustflow.physics.channel import flux_from_moments  # noqa: E402
+from crustflow.physics.flowlaws import flow_law, newtonian_flow_law, simple_shear_prefactor  # noqa: E402
+from crustflow.physics.rheology import (
     arrhenius_fluidity_moments,
     flow_law_channel,
     power_law_channel,

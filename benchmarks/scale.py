@@ -11,7 +11,7 @@ Steps:
 1. For each size N, build (or reuse) a projected scenario in ``benchmarks/_work/scale_n<N>/``:
    topography and crustal thickness, N x N cells of 250 m in EPSG:32625, float32 tiled (256)
    DEFLATE (predictor 3) GeoTIFFs written in strips of rows (the whole grid is never in memory).
-   The values are the invented plateau of :mod:`crustflow.samples` stretched onto the grid's
+   The values are the invented plateau of :mod:`crustflow.samples.plateau` stretched onto the grid's
    extent, as in ``core_run.py``. Before building, the free disk space (``shutil.disk_usage``) is
    compared with an uncompressed upper bound of what the size needs; sizes that would not fit are
    skipped, and said so. ``three.toml`` asks for flux_east, flux_north and thickening_rate as
@@ -106,9 +106,11 @@ variables = ["flux_east", "flux_north", "thickening_rate"]
 formats = ["geotiff"]
 """
 
-RUN_NAMES = {"three": "3 variables, GeoTIFF",
-             "workers": "3 variables, GeoTIFF, --workers {workers}",
-             "full": "all variables, NetCDF + GeoTIFF + figure"}
+RUN_NAMES = {
+    "three": "3 variables, GeoTIFF",
+    "workers": "3 variables, GeoTIFF, --workers {workers}",
+    "full": "all variables, NetCDF + GeoTIFF + figure",
+}
 
 
 # --------------------------------------------------------------------------------------------------
@@ -132,8 +134,9 @@ class Case:
     def label(self) -> str:
         if self.globe_arcsec is None:
             return f"{self.width:,} x {self.height:,}"
-        return (f"globe {self.width:,} x {self.height:,} ({self.globe_arcsec:g} arc-seconds, "
-                "EPSG:4326)")
+        return (
+            f"globe {self.width:,} x {self.height:,} ({self.globe_arcsec:g} arc-seconds, EPSG:4326)"
+        )
 
     @property
     def folder(self) -> Path:
@@ -155,7 +158,7 @@ class Case:
     def sample_coordinates(self, rows: slice) -> tuple[np.ndarray, np.ndarray]:
         """Coordinates in the sample plateau's frame for the cells of rows ``rows``: the grid's
         extent is stretched onto the plateau's 800 x 600 km region."""
-        from crustflow.samples import SAMPLE_BOUNDS
+        from crustflow.samples.plateau import SAMPLE_BOUNDS
 
         west, south, east, north = SAMPLE_BOUNDS
         u = (np.arange(self.width) + 0.5) / self.width
@@ -175,21 +178,33 @@ def globe(arcsec: float) -> Case:
 
 def _grid_paths(case: Case) -> dict[str, Path]:
     folder = case.folder
-    return {"topography": folder / "topography.tif",
-            "crust_thickness": folder / "crust_thickness.tif",
-            "three": folder / "three.toml", "full": folder / "full.toml"}
+    return {
+        "topography": folder / "topography.tif",
+        "crust_thickness": folder / "crust_thickness.tif",
+        "three": folder / "three.toml",
+        "full": folder / "full.toml",
+    }
 
 
 def grids_present(case: Case) -> bool:
     paths = _grid_paths(case)
     stamp_path = case.folder / "grids.json"
-    return (stamp_path.is_file() and json.loads(stamp_path.read_text()) == _stamp(case)
-            and paths["topography"].is_file() and paths["crust_thickness"].is_file())
+    return (
+        stamp_path.is_file()
+        and json.loads(stamp_path.read_text()) == _stamp(case)
+        and paths["topography"].is_file()
+        and paths["crust_thickness"].is_file()
+    )
 
 
 def _stamp(case: Case) -> dict:
-    return {"version": GRID_VERSION, "width": case.width, "height": case.height, "crs": case.crs,
-            "transform": list(case.transform())[:6]}
+    return {
+        "version": GRID_VERSION,
+        "width": case.width,
+        "height": case.height,
+        "crs": case.crs,
+        "transform": list(case.transform())[:6],
+    }
 
 
 def build_scenario(case: Case) -> dict[str, Path]:
@@ -197,7 +212,7 @@ def build_scenario(case: Case) -> dict[str, Path]:
     import rasterio
     from rasterio.windows import Window
 
-    from crustflow.samples import plateau_crust_thickness, plateau_elevation
+    from crustflow.samples.plateau import plateau_crust_thickness, plateau_elevation
 
     case.folder.mkdir(parents=True, exist_ok=True)
     paths = _grid_paths(case)
@@ -209,12 +224,26 @@ def build_scenario(case: Case) -> dict[str, Path]:
         stamp_path = case.folder / "grids.json"
         stamp_path.unlink(missing_ok=True)
         block = min(BLOCK, 16 * max(1, min(case.width, case.height) // 16))
-        profile = dict(driver="GTiff", width=case.width, height=case.height, count=1,
-                       dtype="float32", crs=case.crs, transform=case.transform(),
-                       nodata=float("nan"), compress="deflate", predictor=3, tiled=True,
-                       blockxsize=block, blockysize=block, num_threads="ALL_CPUS")
-        grids = (("topography", plateau_elevation, "surface elevation above sea level"),
-                 ("crust_thickness", plateau_crust_thickness, "crustal thickness, surface to Moho"))
+        profile = dict(
+            driver="GTiff",
+            width=case.width,
+            height=case.height,
+            count=1,
+            dtype="float32",
+            crs=case.crs,
+            transform=case.transform(),
+            nodata=float("nan"),
+            compress="deflate",
+            predictor=3,
+            tiled=True,
+            blockxsize=block,
+            blockysize=block,
+            num_threads="ALL_CPUS",
+        )
+        grids = (
+            ("topography", plateau_elevation, "surface elevation above sea level"),
+            ("crust_thickness", plateau_crust_thickness, "crustal thickness, surface to Moho"),
+        )
         for key, func, description in grids:
             tmp = paths[key].with_name(paths[key].name + ".partial")
             with rasterio.open(tmp, "w", **profile) as dst:
@@ -230,8 +259,9 @@ def build_scenario(case: Case) -> dict[str, Path]:
         stamp_path.write_text(json.dumps(_stamp(case)) + "\n")
         print(f"  built in {time.perf_counter() - began:.1f} s")
     grid = f"{case.label} cells"
-    paths["three"].write_text(SCENARIO.format(grid=grid, suffix=", three variables",
-                                              output=OUTPUT_THREE))
+    paths["three"].write_text(
+        SCENARIO.format(grid=grid, suffix=", three variables", output=OUTPUT_THREE)
+    )
     paths["full"].write_text(SCENARIO.format(grid=grid, suffix=", full output", output=""))
     return paths
 
@@ -259,8 +289,9 @@ def disk_need(case: Case, kinds: list[str]) -> int:
     return need
 
 
-def plan_disk(cases: list[tuple[Case, list[str]]]) -> tuple[list[tuple[Case, list[str]]],
-                                                            list[str]]:
+def plan_disk(
+    cases: list[tuple[Case, list[str]]],
+) -> tuple[list[tuple[Case, list[str]]], list[str]]:
     """Drop the runs that would not fit on the disk (the full run first, then the whole size)."""
     WORK.mkdir(parents=True, exist_ok=True)
     free = shutil.disk_usage(WORK).free - DISK_RESERVE
@@ -269,15 +300,19 @@ def plan_disk(cases: list[tuple[Case, list[str]]]) -> tuple[list[tuple[Case, lis
         need = disk_need(case, kinds)
         if need > free and "full" in kinds:
             lighter = [k for k in kinds if k != "full"]
-            note = (f"{case.label}: full run skipped, it needs up to {need / 2**30:.1f} GB on disk"
-                    f" and {free / 2**30:.1f} GB are free (after a {DISK_RESERVE >> 30} "
-                    "GB reserve)")
+            note = (
+                f"{case.label}: full run skipped, it needs up to {need / 2**30:.1f} GB on disk"
+                f" and {free / 2**30:.1f} GB are free (after a {DISK_RESERVE >> 30} "
+                "GB reserve)"
+            )
             notes.append(note)
             print(note)
             kinds, need = lighter, disk_need(case, lighter)
         if need > free:
-            note = (f"{case.label}: skipped, it needs up to {need / 2**30:.1f} GB on disk and "
-                    f"{free / 2**30:.1f} GB are free (after a {DISK_RESERVE >> 30} GB reserve)")
+            note = (
+                f"{case.label}: skipped, it needs up to {need / 2**30:.1f} GB on disk and "
+                f"{free / 2**30:.1f} GB are free (after a {DISK_RESERVE >> 30} GB reserve)"
+            )
             notes.append(note)
             print(note)
             continue
@@ -315,8 +350,9 @@ class Sample:
 def _busy_seconds() -> float:
     """CPU seconds spent on all cores other than idle and I/O wait, since boot."""
     t = psutil.cpu_times()
-    return sum(getattr(t, name, 0.0) for name in ("user", "nice", "system", "irq", "softirq",
-                                                   "steal"))
+    return sum(
+        getattr(t, name, 0.0) for name in ("user", "nice", "system", "irq", "softirq", "steal")
+    )
 
 
 def measure(cmd: list[str]) -> Sample:
@@ -366,8 +402,14 @@ def measure(cmd: list[str]) -> Sample:
             raise RuntimeError(f"exit status {code}: {' '.join(cmd)}\n{tail}")
     # rusage of the child covers the descendants it waited for; the polled sum covers the rest.
     own = max(usage.ru_utime + usage.ru_stime, sum(cpu_seen.values()))
-    return Sample(wall_s=wall, peak_tree_mb=peak["rss"] / 2**20, cpu_s=own,
-                  other_cpu_s=max(0.0, busy - own - monitor), load_before=load, samples=peak["n"])
+    return Sample(
+        wall_s=wall,
+        peak_tree_mb=peak["rss"] / 2**20,
+        cpu_s=own,
+        other_cpu_s=max(0.0, busy - own - monitor),
+        load_before=load,
+        samples=peak["n"],
+    )
 
 
 def _run_json(out: Path) -> tuple[dict, int | None]:
@@ -407,10 +449,10 @@ def profile_run(case: Case, scenario: Path) -> Profile:
     # Imported beforehand, so that the profile does not count first imports (the subprocess
     # runs do count them, in their 'rest').
     import crustflow.cli
-    import crustflow.export
-    import crustflow.grids
-    import crustflow.scenario
-    import crustflow.stream  # noqa: F401
+    import crustflow.engine.strips  # noqa: F401
+    import crustflow.io.grids
+    import crustflow.io.writers
+    import crustflow.scenario.document
 
     out = case.folder / "out_profile"
     thread_profiles: list[cProfile.Profile] = []
@@ -444,16 +486,19 @@ def profile_run(case: Case, scenario: Path) -> Profile:
     read = _cumulative(m, "crustflow/grids.py", "read")
     strip = _cumulative(m, "crustflow/stream.py", "compute_strip")
     main = {
-        "read the scenario (first use of pint and scipy)": _cumulative(m, "crustflow/scenario.py",
-                                                                       "load_scenario"),
+        "read the scenario (first use of pint and scipy)": _cumulative(
+            m, "crustflow/scenario.py", "load_scenario"
+        ),
         "read and decompress the inputs (GridSource.read)": read,
         "compute (compute_strip without its reads)": strip - read,
-        "wait for the writer thread (queue full, final flush)":
-            _cumulative(m, "crustflow/stream.py", "put")
-            + _cumulative(m, "crustflow/stream.py", "finish"),
+        "wait for the writer thread (queue full, final flush)": _cumulative(
+            m, "crustflow/stream.py", "put"
+        )
+        + _cumulative(m, "crustflow/stream.py", "finish"),
         "close the GeoTIFFs (last row of tiles)": _cumulative(m, "crustflow/export.py", "close"),
-        "run.json (input checksums, versions)": _cumulative(m, "crustflow/export.py",
-                                                            "base_manifest"),
+        "run.json (input checksums, versions)": _cumulative(
+            m, "crustflow/export.py", "base_manifest"
+        ),
     }
     main["rest (opening grids, output folder, checks)"] = max(0.0, wall - sum(main.values()))
     writer = {"busy": 0.0, "idle": 0.0}
@@ -476,9 +521,20 @@ def compression_probe(path: Path) -> dict:
 
     with rasterio.open(path) as src:
         data = src.read(1)
-        profile = dict(driver="GTiff", width=src.width, height=src.height, count=1,
-                       dtype="float32", crs=src.crs, transform=src.transform, nodata=float("nan"),
-                       tiled=True, blockxsize=256, blockysize=256, num_threads="ALL_CPUS")
+        profile = dict(
+            driver="GTiff",
+            width=src.width,
+            height=src.height,
+            count=1,
+            dtype="float32",
+            crs=src.crs,
+            transform=src.transform,
+            nodata=float("nan"),
+            tiled=True,
+            blockxsize=256,
+            blockysize=256,
+            num_threads="ALL_CPUS",
+        )
     times = {}
     with tempfile.TemporaryDirectory(dir=path.parent.parent) as tmp:
         for name, extra in (("none", {}), ("deflate", {"compress": "deflate", "predictor": 3})):
@@ -486,7 +542,7 @@ def compression_probe(path: Path) -> dict:
             began = time.perf_counter()
             with rasterio.open(target, "w", **profile, **extra) as dst:
                 for row0 in range(0, data.shape[0], 256):
-                    rows = data[row0:row0 + 256]
+                    rows = data[row0 : row0 + 256]
                     dst.write(rows, 1, window=Window(0, row0, rows.shape[1], rows.shape[0]))
             times[name] = time.perf_counter() - began
             times[name + "_mb"] = target.stat().st_size / 2**20
@@ -534,16 +590,20 @@ class Row:
 
 def table(rows: list[Row], workers: int, repeat: int) -> list[str]:
     wall = "wall time (s)" if repeat == 1 else f"wall time (s, best of {repeat})"
-    lines = [f"| grid | run | {wall} | cells per second | peak memory (MB, process tree) "
-             "| CPU used (cores) | other processes' CPU (cores) "
-             "| load average before (1 / 5 / 15 min) |",
-             "|---|---|---:|---:|---:|---:|---:|---|"]
+    lines = [
+        f"| grid | run | {wall} | cells per second | peak memory (MB, process tree) "
+        "| CPU used (cores) | other processes' CPU (cores) "
+        "| load average before (1 / 5 / 15 min) |",
+        "|---|---|---:|---:|---:|---:|---:|---|",
+    ]
     for row in rows:
         b = row.best
-        lines.append(f"| {row.case.label} | {RUN_NAMES[row.kind].format(workers=workers)} "
-                     f"| {b.wall_s:.1f} | {row.case.cells / b.wall_s:,.0f} "
-                     f"| {row.peak_tree_mb:,.0f} | {b.cores:.2f} | {b.other_cores:.2f} "
-                     f"| {_load(b.load_before)} |")
+        lines.append(
+            f"| {row.case.label} | {RUN_NAMES[row.kind].format(workers=workers)} "
+            f"| {b.wall_s:.1f} | {row.case.cells / b.wall_s:,.0f} "
+            f"| {row.peak_tree_mb:,.0f} | {b.cores:.2f} | {b.other_cores:.2f} "
+            f"| {_load(b.load_before)} |"
+        )
     return lines
 
 
@@ -553,19 +613,25 @@ def stage_table(rows: list[Row], workers: int) -> list[str]:
         for name in row.best.stages:
             if name not in names:
                 names.append(name)
-    lines = ["| grid | run | " + " | ".join(names)
-             + " | rest: start-up, run.json, moving the folder |",
-             "|---|---|" + "---:|" * (len(names) + 1)]
+    lines = [
+        "| grid | run | " + " | ".join(names) + " | rest: start-up, run.json, moving the folder |",
+        "|---|---|" + "---:|" * (len(names) + 1),
+    ]
     for row in rows:
         st = row.best.stages
         if not st:
-            lines.append(f"| {row.case.label} | {RUN_NAMES[row.kind].format(workers=workers)} | "
-                         + " | ".join("-" for _ in names) + " | no run.json stage times |")
+            lines.append(
+                f"| {row.case.label} | {RUN_NAMES[row.kind].format(workers=workers)} | "
+                + " | ".join("-" for _ in names)
+                + " | no run.json stage times |"
+            )
             continue
         rest = row.best.wall_s - sum(st.values())
         cells = " | ".join(f"{st[n]:.2f}" if n in st else "-" for n in names)
-        lines.append(f"| {row.case.label} | {RUN_NAMES[row.kind].format(workers=workers)} | "
-                     f"{cells} | {rest:.2f} |")
+        lines.append(
+            f"| {row.case.label} | {RUN_NAMES[row.kind].format(workers=workers)} | "
+            f"{cells} | {rest:.2f} |"
+        )
     return lines
 
 
@@ -591,44 +657,55 @@ def full_estimate(rows: list[Row], size: int, full_max: int) -> str | None:
     per_cell = sum(st.values()) - whole - figure
     fixed = wall - sum(st.values()) + figure
     estimate = fixed + per_cell * scale
-    text = (f"Full run at {size:,} x {size:,} **not run, estimated** from the {ref.case.label} "
-            f"one: about {estimate:,.0f} s ({estimate / 60:.0f} min), i.e. its strip-wise stages "
-            f"({per_cell:.1f} s) scaled by the cells ({scale:.2f} x) plus start-up and the figure "
-            f"({fixed:.1f} s).")
+    text = (
+        f"Full run at {size:,} x {size:,} **not run, estimated** from the {ref.case.label} "
+        f"one: about {estimate:,.0f} s ({estimate / 60:.0f} min), i.e. its strip-wise stages "
+        f"({per_cell:.1f} s) scaled by the cells ({scale:.2f} x) plus start-up and the figure "
+        f"({fixed:.1f} s)."
+    )
     if whole:
-        text += (f" The {ref.case.label} run also spent {whole:.1f} s in 'whole-grid load' for "
-                 "`thin_channel_warning`, which needs the whole grid in memory and is left out "
-                 "above 100 M cells, so it is not scaled; for the same reason its peak memory "
-                 f"({ref.peak_tree_mb:,.0f} MB) is set by that step and says little about "
-                 f"{size:,} x {size:,}, where the strips and the GDAL block cache set the peak.")
+        text += (
+            f" The {ref.case.label} run also spent {whole:.1f} s in 'whole-grid load' for "
+            "`thin_channel_warning`, which needs the whole grid in memory and is left out "
+            "above 100 M cells, so it is not scaled; for the same reason its peak memory "
+            f"({ref.peak_tree_mb:,.0f} MB) is set by that step and says little about "
+            f"{size:,} x {size:,}, where the strips and the GDAL block cache set the peak."
+        )
     return text
 
 
 def where_time_goes(rows: list[Row], workers: int, prof: Profile | None) -> list[str]:
     """A few sentences drawn from the numbers."""
     lines: list[str] = []
-    three = sorted((r for r in rows if r.kind == "three" and r.case.globe_arcsec is None),
-                   key=lambda r: r.case.cells)
+    three = sorted(
+        (r for r in rows if r.kind == "three" and r.case.globe_arcsec is None),
+        key=lambda r: r.case.cells,
+    )
     if three:
         big = three[-1]
         b = big.best
         cw = b.stages.get("compute and write", 0.0)
         op = b.stages.get("open grids", 0.0)
         rest = b.wall_s - sum(b.stages.values())
-        text = (f"At {big.case.label} the three-variable run spends {cw:.1f} s of {b.wall_s:.1f} s "
-                f"({100 * cw / b.wall_s:.0f} %) in 'compute and write', {op:.2f} s opening the "
-                f"grids and {rest:.1f} s in start-up, run.json (SHA-256 of the inputs) and moving "
-                "the output folder into place. 'compute and write' covers reading, computing and "
-                "writing at once: the main thread reads and computes strip k + 1 while a second "
-                "thread hands strip k to GDAL, which compresses tiles on all cores "
-                f"(`num_threads=ALL_CPUS`); the process tree used {b.cores:.2f} cores on average.")
+        text = (
+            f"At {big.case.label} the three-variable run spends {cw:.1f} s of {b.wall_s:.1f} s "
+            f"({100 * cw / b.wall_s:.0f} %) in 'compute and write', {op:.2f} s opening the "
+            f"grids and {rest:.1f} s in start-up, run.json (SHA-256 of the inputs) and moving "
+            "the output folder into place. 'compute and write' covers reading, computing and "
+            "writing at once: the main thread reads and computes strip k + 1 while a second "
+            "thread hands strip k to GDAL, which compresses tiles on all cores "
+            f"(`num_threads=ALL_CPUS`); the process tree used {b.cores:.2f} cores on average."
+        )
         if len(three) > 1:
-            rates = ", ".join(f"{r.case.cells / r.best.wall_s / 1e6:.2g} M at {r.case.width:,}"
-                              for r in three)
+            rates = ", ".join(
+                f"{r.case.cells / r.best.wall_s / 1e6:.2g} M at {r.case.width:,}" for r in three
+            )
             small = three[0].best
             fixed = small.wall_s - sum(small.stages.values())
-            text += (f" Throughput in cells per second: {rates} (on the smallest grid, start-up "
-                     f"and run.json take {fixed:.1f} s of {small.wall_s:.1f} s).")
+            text += (
+                f" Throughput in cells per second: {rates} (on the smallest grid, start-up "
+                f"and run.json take {fixed:.1f} s of {small.wall_s:.1f} s)."
+            )
             top = max(three, key=lambda r: r.case.cells / r.best.wall_s)
             falls = big.case.cells / b.wall_s < 0.9 * top.case.cells / top.best.wall_s
             if big is not top and falls:
@@ -637,11 +714,13 @@ def where_time_goes(rows: list[Row], workers: int, prof: Profile | None) -> list
                     n = r.best.strip_rows
                     return f"{n} rows, halo {400 / n:.0f} %" if n else "rows unknown"
 
-                text += (f" Throughput falls at {big.case.label}. One cause: strips hold about "
-                         "2^19 cells, so they get thinner as the grid gets wider, and the 2 + 2 "
-                         "halo rows read and computed around each strip weigh more "
-                         f"({halo(big)} against {halo(top)} at {top.case.label}); the rest "
-                         "was not isolated.")
+                text += (
+                    f" Throughput falls at {big.case.label}. One cause: strips hold about "
+                    "2^19 cells, so they get thinner as the grid gets wider, and the 2 + 2 "
+                    "halo rows read and computed around each strip weigh more "
+                    f"({halo(big)} against {halo(top)} at {top.case.label}); the rest "
+                    "was not isolated."
+                )
         lines.append(text)
     pairs = [(r, _find(rows, r.case.key, "workers")) for r in three]
     pairs = [(a, w) for a, w in pairs if w is not None]
@@ -656,8 +735,12 @@ def where_time_goes(rows: list[Row], workers: int, prof: Profile | None) -> list
             "results travel back pickled). On this "
             f"{os.cpu_count()}-core machine the workers compete with the writer and GDAL's "
             "compression threads for the same cores, so "
-            + ("they do not pay for themselves here; they are meant for more cores or a cluster."
-               if ratio > 0.95 else "they help by the ratio shown."))
+            + (
+                "they do not pay for themselves here; they are meant for more cores or a cluster."
+                if ratio > 0.95
+                else "they help by the ratio shown."
+            )
+        )
     fulls = [r for r in rows if r.kind == "full"]
     if fulls:
         f = max(fulls, key=lambda r: r.case.cells)
@@ -668,7 +751,8 @@ def where_time_goes(rows: list[Row], workers: int, prof: Profile | None) -> list
                 f"{f.best.wall_s / t.best.wall_s:.1f} x the three-variable run: 21 variables "
                 "computed (peak speed, wall drag and backflow need the per-cell solution, in "
                 "strips a quarter the size), and each compressed and written twice (GeoTIFF and "
-                "NetCDF).")
+                "NetCDF)."
+            )
     if prof is not None:
         total = prof.wall_s
         parts = "; ".join(f"{k} {v:.1f} s ({100 * v / total:.0f} %)" for k, v in prof.main.items())
@@ -687,14 +771,19 @@ def where_time_goes(rows: list[Row], workers: int, prof: Profile | None) -> list
             "time per variable and writing the bytes very little: for the "
             f"{len(THREE_VARIABLES)} outputs of this run about "
             f"{len(THREE_VARIABLES) * max(0.0, c['deflate'] - c['none']):.1f} s, spread over "
-            "GDAL's threads and overlapping the compute.")
+            "GDAL's threads and overlapping the compute."
+        )
         comp = prof.main["compute (compute_strip without its reads)"]
         read = prof.main["read and decompress the inputs (GridSource.read)"]
         wait = prof.main["wait for the writer thread (queue full, final flush)"]
-        lead = max((("computing", comp), ("reading", read),
-                    ("waiting for compression and writing", wait)), key=lambda kv: kv[1])
-        lines.append(f"So the largest share of the main thread goes to {lead[0]} ({lead[1]:.1f} s "
-                     f"of {total:.1f} s).")
+        lead = max(
+            (("computing", comp), ("reading", read), ("waiting for compression and writing", wait)),
+            key=lambda kv: kv[1],
+        )
+        lines.append(
+            f"So the largest share of the main thread goes to {lead[0]} ({lead[1]:.1f} s "
+            f"of {total:.1f} s)."
+        )
     return lines
 
 
@@ -707,19 +796,24 @@ def targets(rows: list[Row], workers: int) -> list[str]:
         name = RUN_NAMES[kind].format(workers=workers)
         mem, wall = row.peak_tree_mb, row.best.wall_s
         tag = "" if kind == "three" else " (not a target; for comparison)"
-        out.append(f"- {TARGET_SIZE:,} x {TARGET_SIZE:,}, {name}, peak memory <= "
-                   f"{TARGET_MB / 1024:g} GB: **{'met' if mem <= TARGET_MB else 'not met'}** "
-                   f"({mem:,.0f} MB){tag}")
-        out.append(f"- {TARGET_SIZE:,} x {TARGET_SIZE:,}, {name}, wall time <= "
-                   f"{TARGET_S / 60:g} min: **{'met' if wall <= TARGET_S else 'not met'}** "
-                   f"({wall:.1f} s){tag}")
+        out.append(
+            f"- {TARGET_SIZE:,} x {TARGET_SIZE:,}, {name}, peak memory <= "
+            f"{TARGET_MB / 1024:g} GB: **{'met' if mem <= TARGET_MB else 'not met'}** "
+            f"({mem:,.0f} MB){tag}"
+        )
+        out.append(
+            f"- {TARGET_SIZE:,} x {TARGET_SIZE:,}, {name}, wall time <= "
+            f"{TARGET_S / 60:g} min: **{'met' if wall <= TARGET_S else 'not met'}** "
+            f"({wall:.1f} s){tag}"
+        )
     if not out:
         out.append(f"- the targets concern {TARGET_SIZE:,} x {TARGET_SIZE:,}, which was not run")
     return out
 
 
-def section(args, info: dict, load_start, load_end, rows: list[Row], notes: list[str],
-            prof: Profile | None) -> str:
+def section(
+    args, info: dict, load_start, load_end, rows: list[Row], notes: list[str], prof: Profile | None
+) -> str:
     today = datetime.now(UTC).date().isoformat()
     command = "python benchmarks/scale.py --write-results"
     if list(args.sizes) != list(DEFAULT_SIZES):
@@ -733,36 +827,47 @@ def section(args, info: dict, load_start, load_end, rows: list[Row], notes: list
     if args.profile_size != 8000:
         command += f" --profile-size {args.profile_size}"
     if args.globe:
-        command += " --globe" + (f" --globe-arcsec {args.globe_arcsec:g}"
-                                 if args.globe_arcsec != 30 else "")
+        command += " --globe" + (
+            f" --globe-arcsec {args.globe_arcsec:g}" if args.globe_arcsec != 30 else ""
+        )
     largest = max((r.case for r in rows), key=lambda c: c.cells, default=None)
     title = "## scale: how `crustflow run` scales with the grid"
     if largest is not None:
         title += f" (up to {largest.label})"
-    lines = ["<!-- scale:begin -->", title, "",
-             f"Recorded {today} with `{command}`.", ""]
+    lines = ["<!-- scale:begin -->", title, "", f"Recorded {today} with `{command}`.", ""]
     if args.note:
         lines += [args.note, ""]
-    lines += ["Machine: " + "; ".join(f"{k} {v}" for k, v in info.items()) + ".", "",
-              f"Load average (1 / 5 / 15 min): {_load(load_start)} at the start, {_load(load_end)} "
-              "at the end. The machine is shared: the table gives, per run, the CPU the rest of "
-              "the machine used meanwhile (busy CPU time of all cores minus the run's own, per "
-              "second of wall time); anything well above 0 means the run shared its cores."]
+    lines += [
+        "Machine: " + "; ".join(f"{k} {v}" for k, v in info.items()) + ".",
+        "",
+        f"Load average (1 / 5 / 15 min): {_load(load_start)} at the start, {_load(load_end)} "
+        "at the end. The machine is shared: the table gives, per run, the CPU the rest of "
+        "the machine used meanwhile (busy CPU time of all cores minus the run's own, per "
+        "second of wall time); anything well above 0 means the run shared its cores.",
+    ]
     if rows:
         worst = max(rows, key=lambda r: r.best.other_cores)
         name = RUN_NAMES[worst.kind].format(workers=args.workers)
-        lines[-1] += (f" Here other processes used at most {worst.best.other_cores:.2f} cores "
-                      f"during a run ({worst.case.label}, {name})")
-        lines[-1] += ("; the load averages are then mostly this benchmark's own runs."
-                      if worst.best.other_cores < 0.1 else ".")
+        lines[-1] += (
+            f" Here other processes used at most {worst.best.other_cores:.2f} cores "
+            f"during a run ({worst.case.label}, {name})"
+        )
+        lines[-1] += (
+            "; the load averages are then mostly this benchmark's own runs."
+            if worst.best.other_cores < 0.1
+            else "."
+        )
     lines += [""]
     lines += table(rows, args.workers, args.repeat) + [""]
-    lines += ["Projected grids: EPSG:32625, 250 m cells, the invented plateau stretched onto the "
-              "extent; float32 tiled (256) DEFLATE inputs. Wall time: subprocess start to exit, "
-              "imports included. Peak memory: highest sum of RSS over the process and all its "
-              f"descendants (dask workers included), sampled with psutil every "
-              f"{POLL_SECONDS * 1000:.0f} ms. CPU used: user + system time of the process tree "
-              "per second of wall time.", ""]
+    lines += [
+        "Projected grids: EPSG:32625, 250 m cells, the invented plateau stretched onto the "
+        "extent; float32 tiled (256) DEFLATE inputs. Wall time: subprocess start to exit, "
+        "imports included. Peak memory: highest sum of RSS over the process and all its "
+        f"descendants (dask workers included), sampled with psutil every "
+        f"{POLL_SECONDS * 1000:.0f} ms. CPU used: user + system time of the process tree "
+        "per second of wall time.",
+        "",
+    ]
     lines += ["Stage times (s) from each run's `run.json` (`stage_seconds`):", ""]
     lines += stage_table(rows, args.workers) + [""]
     estimate = full_estimate(rows, TARGET_SIZE, args.full_max)
@@ -771,8 +876,11 @@ def section(args, info: dict, load_start, load_end, rows: list[Row], notes: list
     for note in notes:
         lines += [f"Not run: {note}.", ""]
     if not args.globe:
-        lines += ["The whole-globe case (EPSG:4326, 30 arc-seconds, 43,200 x 21,600 cells) is "
-                  "optional (`--globe`) and was not run.", ""]
+        lines += [
+            "The whole-globe case (EPSG:4326, 30 arc-seconds, 43,200 x 21,600 cells) is "
+            "optional (`--globe`) and was not run.",
+            "",
+        ]
     lines += ["### Where the time goes", ""]
     for paragraph in where_time_goes(rows, args.workers, prof):
         lines += [paragraph, ""]
@@ -782,8 +890,10 @@ def section(args, info: dict, load_start, load_end, rows: list[Row], notes: list
 
 
 def write_results(text: str) -> None:
-    head = ("# Benchmark results\n\nWritten by the benchmark scripts in this folder with "
-            "`--write-results`; see [README.md](README.md) for what each one measures.\n\n")
+    head = (
+        "# Benchmark results\n\nWritten by the benchmark scripts in this folder with "
+        "`--write-results`; see [README.md](README.md) for what each one measures.\n\n"
+    )
     old = RESULTS.read_text() if RESULTS.is_file() else head
     pattern = re.compile(r"<!-- scale:begin -->.*?<!-- scale:end -->\n?", re.S)
     if pattern.search(old):
@@ -798,32 +908,67 @@ def write_results(text: str) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
-                                     formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--sizes", type=int, nargs="+", default=list(DEFAULT_SIZES), metavar="N",
-                        help="cells per side of the projected grids (default: 2000 8000 20000)")
-    parser.add_argument("--full-max", type=int, default=8000, metavar="N",
-                        help="run the full-output scenario up to this size (default 8000; larger "
-                        "full runs are estimated from the largest measured one)")
-    parser.add_argument("--workers", type=int, default=2, metavar="N",
-                        help="worker processes for the --workers run (default 2)")
+    parser = argparse.ArgumentParser(
+        description=__doc__.split("\n\n")[0], formatter_class=argparse.RawDescriptionHelpFormatter
+    )
+    parser.add_argument(
+        "--sizes",
+        type=int,
+        nargs="+",
+        default=list(DEFAULT_SIZES),
+        metavar="N",
+        help="cells per side of the projected grids (default: 2000 8000 20000)",
+    )
+    parser.add_argument(
+        "--full-max",
+        type=int,
+        default=8000,
+        metavar="N",
+        help="run the full-output scenario up to this size (default 8000; larger "
+        "full runs are estimated from the largest measured one)",
+    )
+    parser.add_argument(
+        "--workers",
+        type=int,
+        default=2,
+        metavar="N",
+        help="worker processes for the --workers run (default 2)",
+    )
     parser.add_argument("--repeat", type=int, default=1, help="runs of each command (default 1)")
-    parser.add_argument("--profile-size", type=int, default=8000, metavar="N",
-                        help="profile a three-variable run in process on the largest measured size "
-                        "up to N (default 8000; 0: no profile)")
-    parser.add_argument("--globe", action="store_true",
-                        help="also the whole globe in EPSG:4326 (43,200 x 21,600 cells at 30 "
-                        "arc-seconds, ~3.7 GB per float32 grid uncompressed); off by default")
-    parser.add_argument("--globe-arcsec", type=float, default=30.0, metavar="S",
-                        help="cell size of the globe case in arc-seconds (default 30)")
-    parser.add_argument("--write-results", action="store_true",
-                        help="write the results into benchmarks/RESULTS.md (section 'scale')")
+    parser.add_argument(
+        "--profile-size",
+        type=int,
+        default=8000,
+        metavar="N",
+        help="profile a three-variable run in process on the largest measured size "
+        "up to N (default 8000; 0: no profile)",
+    )
+    parser.add_argument(
+        "--globe",
+        action="store_true",
+        help="also the whole globe in EPSG:4326 (43,200 x 21,600 cells at 30 "
+        "arc-seconds, ~3.7 GB per float32 grid uncompressed); off by default",
+    )
+    parser.add_argument(
+        "--globe-arcsec",
+        type=float,
+        default=30.0,
+        metavar="S",
+        help="cell size of the globe case in arc-seconds (default 30)",
+    )
+    parser.add_argument(
+        "--write-results",
+        action="store_true",
+        help="write the results into benchmarks/RESULTS.md (section 'scale')",
+    )
     parser.add_argument("--note", default="", help="a sentence to put in the RESULTS.md section")
     args = parser.parse_args(argv)
     if min(args.sizes) < 16 or args.repeat < 1 or args.workers < 1:
         parser.error("sizes must be at least 16, --repeat and --workers at least 1")
-    if args.globe and not (0 < args.globe_arcsec <= 3600 and (3600 * 180 / args.globe_arcsec)
-                           == round(3600 * 180 / args.globe_arcsec)):
+    if args.globe and not (
+        0 < args.globe_arcsec <= 3600
+        and (3600 * 180 / args.globe_arcsec) == round(3600 * 180 / args.globe_arcsec)
+    ):
         parser.error("--globe-arcsec must divide 180 degrees into whole cells")
 
     info = machine()
@@ -841,9 +986,11 @@ def main(argv: list[str] | None = None) -> int:
         wanted.append((globe(args.globe_arcsec), ["three", "workers"]))
     planned, notes = plan_disk(wanted)
     if any(size > args.full_max for size in args.sizes):
-        print(f"full runs above {args.full_max:,} cells a side are not run: the full run at "
-              f"{TARGET_SIZE:,} x {TARGET_SIZE:,} takes long and is estimated from the largest "
-              "measured full run")
+        print(
+            f"full runs above {args.full_max:,} cells a side are not run: the full run at "
+            f"{TARGET_SIZE:,} x {TARGET_SIZE:,} takes long and is estimated from the largest "
+            "measured full run"
+        )
 
     crustflow_cmd = Path(sys.executable).with_name("crustflow")
     if not crustflow_cmd.is_file():
@@ -864,9 +1011,12 @@ def main(argv: list[str] | None = None) -> int:
                 sample = measure(cmd)
                 sample.stages, sample.strip_rows = _run_json(out)
                 runs.append(sample)
-                print(f"{sample.wall_s:.1f} s, peak {sample.peak_tree_mb:,.0f} MB, "
-                      f"{sample.cores:.2f} cores (others {sample.other_cores:.2f}), "
-                      f"load before {_load(sample.load_before)}", flush=True)
+                print(
+                    f"{sample.wall_s:.1f} s, peak {sample.peak_tree_mb:,.0f} MB, "
+                    f"{sample.cores:.2f} cores (others {sample.other_cores:.2f}), "
+                    f"load before {_load(sample.load_before)}",
+                    flush=True,
+                )
             rows.append(Row(case, kind, runs))
 
     prof = None

@@ -8,8 +8,13 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
-from .errors import CrustflowError, CrustflowInputError  # noqa: E402
-from .scenario import ModelParameters, Scenario, load_scenario, scenario_from_dict  # noqa: E402
+from crustflow.errors import CrustflowError, CrustflowInputError  # noqa: E402
+from crustflow.scenario.document import (
+    ModelParameters,
+    Scenario,
+    load_scenario,
+    scenario_from_dict,
+)  # noqa: E402
 
 __all__ = [
     "__version__",
@@ -34,15 +39,15 @@ __all__ = [
 def __getattr__(name: str):
     # Heavy modules (xarray, rasterio) load on first use so that `crustflow --help` stays quick.
     if name in ("compute_fields", "solve", "VARIABLES"):
-        from . import model
+        from crustflow.engine import api as model
 
         return getattr(model, name)
     if name in ("budget_table", "section_budgets", "region_budgets"):
-        from . import budgets
+        from crustflow.analyses import budgets
 
         return getattr(budgets, name)
     if name == "velocity_profiles":
-        from .profiles import velocity_profiles
+        from crustflow.analyses.profiles import velocity_profiles
 
         return velocity_profiles
     if name == "samples":
@@ -50,7 +55,7 @@ def __getattr__(name: str):
 
         return importlib.import_module(".samples", __name__)
     if name in ("channel_flow", "velocity_profile"):
-        from . import channel
+        from crustflow.physics import channel
 
         return getattr(channel, name)
     raise AttributeError(f"module 'crustflow' has no attribute {name!r}")

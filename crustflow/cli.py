@@ -13,8 +13,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .errors import CrustflowInputError
+from crustflow import __version__
+from crustflow.errors import CrustflowInputError
 
 CAUTION_HELP = (
     "Outputs are research estimates of a simplified model (thin channel, rigid walls, lithostatic "
@@ -62,18 +62,27 @@ def _client(workers: int | None, scheduler: str | None):
         try:
             return Client(scheduler, timeout="20s"), None
         except OSError as exc:
-            raise CrustflowInputError(f"--scheduler {scheduler}: no dask scheduler answers there "
-                                      f"({exc.__class__.__name__}); start one or check the address") \
-                from None
-    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                           dashboard_address=None)
+            raise CrustflowInputError(
+                f"--scheduler {scheduler}: no dask scheduler answers there "
+                f"({exc.__class__.__name__}); start one or check the address"
+            ) from None
+    cluster = LocalCluster(
+        n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None
+    )
     return Client(cluster), cluster
 
 
-def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = None,
-         workers: int | None = None, scheduler: str | None = None, cog: bool = False) -> int:
-    from .export import atomic_folder
-    from .scenario import load_scenario
+def _run(
+    scenario_path: Path,
+    out: Path,
+    quiet: bool,
+    strip_rows: int | None = None,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    cog: bool = False,
+) -> int:
+    from crustflow.io.writers import atomic_folder
+    from crustflow.scenario.document import load_scenario
 
     began = time.perf_counter()
     scenario = load_scenario(scenario_path)
@@ -94,16 +103,19 @@ def _run(scenario_path: Path, out: Path, quiet: bool, strip_rows: int | None = N
     client, cluster = _client(workers, scheduler)
     try:
         with atomic_folder(out, scenario.input_paths) as tmp:
-            result = _run_into(scenario, tmp, note, progress, timings, quiet, strip_rows, budgets,
-                               client, cog)
+            result = _run_into(
+                scenario, tmp, note, progress, timings, quiet, strip_rows, budgets, client, cog
+            )
     finally:
         if client is not None:
             client.close()
         if cluster is not None:
             cluster.close()
     if not quiet:
-        print(f"crustflow: wrote {out.expanduser().resolve()} in "
-              f"{time.perf_counter() - began:.1f} s", file=sys.stderr)
+        print(
+            f"crustflow: wrote {out.expanduser().resolve()} in {time.perf_counter() - began:.1f} s",
+            file=sys.stderr,
+        )
         _summary(result)
         if result.get("table") is not None:
             _print_table(result["table"])
@@ -114,7 +126,7 @@ def _rows_for_chunk(scenario_path: Path, chunk: int) -> int:
     """Strip rows holding about ``chunk`` x ``chunk`` cells of the scenario's topography grid."""
     import rasterio
 
-    from .scenario import load_scenario
+    from crustflow.scenario.document import load_scenario
 
     scenario = load_scenario(scenario_path)
     try:
@@ -125,20 +137,26 @@ def _rows_for_chunk(scenario_path: Path, chunk: int) -> int:
     return max(1, chunk * chunk // width)
 
 
-def _run_into(scenario, tmp: Path, note, progress, timings, quiet, strip_rows, budgets, client,
-              cog) -> dict:
+def _run_into(
+    scenario, tmp: Path, note, progress, timings, quiet, strip_rows, budgets, client, cog
+) -> dict:
     """Compute and write everything a run asks for into ``tmp``; return the run's result."""
-    from .export import base_manifest, write_manifest
-    from .stream import run_strips
+    from crustflow.engine.strips import run_strips
+    from crustflow.io.writers import base_manifest, write_manifest
 
-    result = run_strips(scenario, tmp, strip_rows=strip_rows, stage=note,
-                        progress=not quiet and sys.stderr.isatty(),
-                        budget_fields=tmp / ".budget_fields.nc" if budgets else None,
-                        client=client)
+    result = run_strips(
+        scenario,
+        tmp,
+        strip_rows=strip_rows,
+        stage=note,
+        progress=not quiet and sys.stderr.isatty(),
+        budget_fields=tmp / ".budget_fields.nc" if budgets else None,
+        client=client,
+    )
     written = result["written"]
     if cog:
         note("cloud-optimised GeoTIFF")
-        from .export import to_cog
+        from crustflow.io.writers import to_cog
 
         for name in written:
             if name.endswith(".tif"):
@@ -146,13 +164,14 @@ def _run_into(scenario, tmp: Path, note, progress, timings, quiet, strip_rows, b
     result["table"] = None
     if budgets:
         note("budgets")
-        result["table"], files = _write_budgets(result["budget_fields"], tmp, scenario.sections,
-                                                scenario.regions, scenario.title)
+        result["table"], files = _write_budgets(
+            result["budget_fields"], tmp, scenario.sections, scenario.regions, scenario.title
+        )
         written += files
         if result["budget_fields"].name != "fields.nc":
             result["budget_fields"].unlink()
     if result["figure"] is not None:
-        from .plot import flux_map
+        from crustflow.figures.common import flux_map
 
         note("draw figure")
         flux_map(result["figure"], tmp / "flux_map.png", title=scenario.title)
@@ -164,8 +183,11 @@ def _run_into(scenario, tmp: Path, note, progress, timings, quiet, strip_rows, b
         written += ensemble["written"]
     note("write manifest")
     manifest = base_manifest(scenario, timings, result["provenance"])
-    manifest["grid"] = {"shape": result["shape"], "strip_rows": result["strip_rows"],
-                        "engine": "dask.distributed" if client is not None else "local"}
+    manifest["grid"] = {
+        "shape": result["shape"],
+        "strip_rows": result["strip_rows"],
+        "engine": "dask.distributed" if client is not None else "local",
+    }
     if ensemble is not None:
         manifest["ensemble"] = ensemble["manifest"]
     write_manifest(tmp, manifest, written)
@@ -175,8 +197,8 @@ def _run_into(scenario, tmp: Path, note, progress, timings, quiet, strip_rows, b
 
 def _check_features(scenario) -> None:
     """Read the scenario's section and region files once, so that bad ones fail before any work."""
-    from .budgets import read_features
-    from .grids import close_sources, open_sources
+    from crustflow.analyses.budgets import read_features
+    from crustflow.io.grids import close_sources, open_sources
 
     sources = open_sources(scenario)
     try:
@@ -192,7 +214,7 @@ def _check_features(scenario) -> None:
 def _write_budgets(fields_path: Path, folder: Path, sections, regions, title: str):
     import xarray as xr
 
-    from .budgets import write_budget_outputs
+    from crustflow.analyses.budgets import write_budget_outputs
 
     with xr.open_dataset(fields_path, decode_coords="all") as fields:
         fields = fields.load()
@@ -204,48 +226,65 @@ def _write_budgets(fields_path: Path, folder: Path, sections, regions, title: st
 
 def _print_table(table) -> None:
     """The budget table on the terminal: totals in km^3/Myr (1 km^3/Myr = 1000 m^3/yr)."""
-    print("  budgets (sections: positive to the right of the line's direction; regions: net inflow)")
-    print(f"  {'name':<24} {'kind':<8} {'km3/Myr':>12} {'length km':>10} {'area km2':>12} "
-          f"{'covered':>8}")
+    print(
+        "  budgets (sections: positive to the right of the line's direction; regions: net inflow)"
+    )
+    print(
+        f"  {'name':<24} {'kind':<8} {'km3/Myr':>12} {'length km':>10} {'area km2':>12} "
+        f"{'covered':>8}"
+    )
     for row in table.itertuples():
         length = "" if row.length_km != row.length_km else f"{row.length_km:.1f}"
         area = "" if row.area_km2 != row.area_km2 else f"{row.area_km2:.0f}"
-        print(f"  {str(row.name)[:24]:<24} {row.kind:<8} {row.volume_flux_km3_per_Myr:>12.4g} "
-              f"{length:>10} {area:>12} {row.covered_fraction:>8.2f}")
+        print(
+            f"  {str(row.name)[:24]:<24} {row.kind:<8} {row.volume_flux_km3_per_Myr:>12.4g} "
+            f"{length:>10} {area:>12} {row.covered_fraction:>8.2f}"
+        )
 
 
 def _summary(result: dict) -> None:
-    from .fields import VARIABLES
+    from crustflow.engine.fields import VARIABLES
 
-    labels = {"flux_magnitude": "flux magnitude", "thickening_rate": "thickening rate",
-              "uplift_rate": "uplift rate"}
+    labels = {
+        "flux_magnitude": "flux magnitude",
+        "thickening_rate": "thickening rate",
+        "uplift_rate": "uplift rate",
+    }
     for name, (lo, hi) in result["ranges"].items():
         unit = VARIABLES[name].units
         text = f"{lo:.3g} to {hi:.3g} {unit}" if lo <= hi else "no valid cells"
         print(f"  {labels[name]:<16} {text}")
     if result.get("skipped_variables"):
-        print(f"  note: not written for a grid this large (whole-grid steps): "
-              f"{', '.join(result['skipped_variables'])}")
+        print(
+            f"  note: not written for a grid this large (whole-grid steps): "
+            f"{', '.join(result['skipped_variables'])}"
+        )
     if result.get("excluded_cells"):
-        print(f"  note: {result['excluded_cells']} cells excluded: the placed channel has no "
-              "thickness there or leaves the crust")
+        print(
+            f"  note: {result['excluded_cells']} cells excluded: the placed channel has no "
+            "thickness there or leaves the crust"
+        )
     if result.get("thin_channel_cells"):
-        print(f"  WARNING: in {result['thin_channel_cells']} cells the load varies on wavelengths "
-              "shorter than 3 channel thicknesses, where the thin-channel model fails "
-              "(thin_channel_warning = 1)")
+        print(
+            f"  WARNING: in {result['thin_channel_cells']} cells the load varies on wavelengths "
+            "shorter than 3 channel thicknesses, where the thin-channel model fails "
+            "(thin_channel_warning = 1)"
+        )
     if result.get("unconverged_cells"):
-        print(f"  WARNING: the per-cell solver did not converge in {result['unconverged_cells']} "
-              "cells (solver_converged = 0 there; their values are the last iterate)")
+        print(
+            f"  WARNING: the per-cell solver did not converge in {result['unconverged_cells']} "
+            "cells (solver_converged = 0 there; their values are the last iterate)"
+        )
     if result["backflow_cells"] is not None:
         print(f"  backflow cells   {result['backflow_cells']} of {result['valid_cells']}")
 
 
 def _check(scenario_path: Path) -> int:
-    from .channel_setup import CellInputCheck
-    from .fields import ThinCrustCheck, crust_thickness_of
-    from .grids import GridChecks, close_sources, open_sources
-    from .scenario import load_scenario
-    from .stream import strip_rows_for
+    from crustflow.engine.fields import ThinCrustCheck, crust_thickness_of
+    from crustflow.engine.strips import strip_rows_for
+    from crustflow.io.grids import GridChecks, close_sources, open_sources
+    from crustflow.scenario.channel import CellInputCheck
+    from crustflow.scenario.document import load_scenario
 
     scenario = load_scenario(scenario_path)
     p = scenario.parameters
@@ -260,10 +299,16 @@ def _check(scenario_path: Path) -> int:
             arrays = {k: src.read(r0, min(topo.height, r0 + rows)) for k, src in sources.items()}
             checks.update(arrays)
             H = arrays["topography"]
-            T = crust_thickness_of(H, p, crust_thickness=arrays.get("crust_thickness"),
-                                   moho_depth=arrays.get("moho_depth"))
-            cell = {k: g.to_si(arrays[k]) for k, g in
-                    {**scenario.channel.grids, **scenario.load.grids}.items()}
+            T = crust_thickness_of(
+                H,
+                p,
+                crust_thickness=arrays.get("crust_thickness"),
+                moho_depth=arrays.get("moho_depth"),
+            )
+            cell = {
+                k: g.to_si(arrays[k])
+                for k, g in {**scenario.channel.grids, **scenario.load.grids}.items()
+            }
             cell_check.update(cell)
             thin.update(np.where(np.isfinite(H), T, np.nan), cell.get("channel_thickness"))
         checks.finish()
@@ -271,30 +316,35 @@ def _check(scenario_path: Path) -> int:
         thin.finish()
         unit = "degrees" if topo.crs.is_geographic else "m"
         print(f"scenario         {scenario.title}")
-        print(f"grid             {topo.width} x {topo.height} cells, CRS {topo.crs.to_string()}, "
-              f"cell {abs(topo.transform.a):g} x {abs(topo.transform.e):g} {unit}")
+        print(
+            f"grid             {topo.width} x {topo.height} cells, CRS {topo.crs.to_string()}, "
+            f"cell {abs(topo.transform.a):g} x {abs(topo.transform.e):g} {unit}"
+        )
         for key, src in sources.items():
             cells = topo.width * topo.height
-            print(f"{key:<16} {checks.vmin[key]:.6g} to {checks.vmax[key]:.6g} m, "
-                  f"{cells - checks.count[key]} nodata cells; {src.method}")
+            print(
+                f"{key:<16} {checks.vmin[key]:.6g} to {checks.vmax[key]:.6g} m, "
+                f"{cells - checks.count[key]} nodata cells; {src.method}"
+            )
     finally:
         close_sources(sources)
     if not 1e16 <= p.viscosity <= 1e24:
-        print(f"note: viscosity {p.viscosity:.3g} Pa s lies outside 1e16-1e24 Pa s, unusual for a "
-              "crustal channel")
+        print(
+            f"note: viscosity {p.viscosity:.3g} Pa s lies outside 1e16-1e24 Pa s, unusual for a "
+            "crustal channel"
+        )
     if not 1e3 <= p.channel_thickness <= 60e3:
         print(f"note: channel thickness {p.channel_thickness / 1e3:g} km lies outside 1-60 km")
     print("check passed: the scenario's grids and parameters are usable")
     return 0
 
 
-def _budget(scenario_path: Path, sections, regions, run_dir: Path, out: Path,
-            quiet: bool) -> int:
+def _budget(scenario_path: Path, sections, regions, run_dir: Path, out: Path, quiet: bool) -> int:
     import dataclasses
 
-    from .export import atomic_folder, base_manifest, write_manifest
-    from .scenario import load_scenario
-    from .stream import BUDGET_VARIABLES, run_strips
+    from crustflow.engine.strips import BUDGET_VARIABLES, run_strips
+    from crustflow.io.writers import atomic_folder, base_manifest, write_manifest
+    from crustflow.scenario.document import load_scenario
 
     scenario = load_scenario(scenario_path)
     scenario = dataclasses.replace(
@@ -303,8 +353,9 @@ def _budget(scenario_path: Path, sections, regions, run_dir: Path, out: Path,
         regions=Path(regions).resolve() if regions else scenario.regions,
     )
     if scenario.sections is None and scenario.regions is None:
-        raise CrustflowInputError("give --sections FILE and/or --regions FILE (or a [budgets] table "
-                                  "in the scenario)")
+        raise CrustflowInputError(
+            "give --sections FILE and/or --regions FILE (or a [budgets] table in the scenario)"
+        )
     _check_features(scenario)
     fields_nc = run_dir.expanduser().resolve() / "fields.nc"
     reuse = fields_nc.is_file() and _same_run(fields_nc.parent, scenario, BUDGET_VARIABLES)
@@ -312,11 +363,15 @@ def _budget(scenario_path: Path, sections, regions, run_dir: Path, out: Path,
         if reuse:
             path = fields_nc
         else:
-            result = run_strips(dataclasses.replace(scenario, formats=()), tmp,
-                                budget_fields=tmp / ".budget_fields.nc")
+            result = run_strips(
+                dataclasses.replace(scenario, formats=()),
+                tmp,
+                budget_fields=tmp / ".budget_fields.nc",
+            )
             path = result["budget_fields"]
-        table, files = _write_budgets(path, tmp, scenario.sections, scenario.regions,
-                                      scenario.title)
+        table, files = _write_budgets(
+            path, tmp, scenario.sections, scenario.regions, scenario.title
+        )
         if not reuse:
             path.unlink()
         manifest = base_manifest(scenario, {})
@@ -335,7 +390,7 @@ def _same_run(run_dir: Path, scenario, needed) -> bool:
 
     import netCDF4
 
-    from .grids import file_checksum
+    from crustflow.io.grids import file_checksum
 
     try:
         manifest = json.loads((run_dir / "run.json").read_text())
@@ -354,9 +409,9 @@ def _same_run(run_dir: Path, scenario, needed) -> bool:
 
 
 def _profile(scenario_path: Path, at, points, crs, out: Path, quiet: bool) -> int:
-    from .export import atomic_folder, base_manifest, write_manifest
-    from .profiles import read_points, velocity_profiles, write_profile_outputs
-    from .scenario import load_scenario
+    from crustflow.analyses.profiles import read_points, velocity_profiles, write_profile_outputs
+    from crustflow.io.writers import atomic_folder, base_manifest, write_manifest
+    from crustflow.scenario.document import load_scenario
 
     if (at is None) == (points is None):
         raise CrustflowInputError("give the site with --at X Y, or several with --points FILE")
@@ -369,14 +424,18 @@ def _profile(scenario_path: Path, at, points, crs, out: Path, quiet: bool) -> in
     with atomic_folder(out, scenario.input_paths) as tmp:
         files = write_profile_outputs(ds, tmp)
         write_manifest(tmp, base_manifest(scenario, {}), files)
-    print(f"  {'site':<20} {'flux east':>11} {'flux north':>11} {'upper drag E':>12} "
-          f"{'upper drag N':>12} {'lower drag E':>12} {'lower drag N':>12}")
+    print(
+        f"  {'site':<20} {'flux east':>11} {'flux north':>11} {'upper drag E':>12} "
+        f"{'upper drag N':>12} {'lower drag E':>12} {'lower drag N':>12}"
+    )
     print(f"  {'':<20} {'m2/yr':>11} {'m2/yr':>11} {'MPa':>12} {'MPa':>12} {'MPa':>12} {'MPa':>12}")
     for site in ds.site.values:
         s = ds.sel(site=site)
-        print(f"  {str(site)[:20]:<20} {float(s.flux_east):>11.4g} {float(s.flux_north):>11.4g} "
-              f"{float(s.upper_wall_drag_east):>12.4g} {float(s.upper_wall_drag_north):>12.4g} "
-              f"{float(s.lower_wall_drag_east):>12.4g} {float(s.lower_wall_drag_north):>12.4g}")
+        print(
+            f"  {str(site)[:20]:<20} {float(s.flux_east):>11.4g} {float(s.flux_north):>11.4g} "
+            f"{float(s.upper_wall_drag_east):>12.4g} {float(s.upper_wall_drag_north):>12.4g} "
+            f"{float(s.lower_wall_drag_east):>12.4g} {float(s.lower_wall_drag_north):>12.4g}"
+        )
     if not quiet:
         print(f"crustflow: wrote {out.expanduser().resolve()}", file=sys.stderr)
     return 0
@@ -384,21 +443,24 @@ def _profile(scenario_path: Path, at, points, crs, out: Path, quiet: bool) -> in
 
 def _run_ensemble(scenario, folder: Path, quiet: bool) -> dict:
     """Run the scenario's ensemble into ``folder``; return written files and manifest entries."""
-    from .ensemble import run_ensemble
+    from crustflow.analyses.ensemble.run import run_ensemble
 
-    summary = run_ensemble(scenario, scenario.ensemble, folder,
-                           progress=not quiet and sys.stderr.isatty())
+    summary = run_ensemble(
+        scenario, scenario.ensemble, folder, progress=not quiet and sys.stderr.isatty()
+    )
     return {"written": list(summary.get("written", [])), "manifest": summary["manifest"]}
 
 
 def _ensemble(scenario_path: Path, out: Path, quiet: bool) -> int:
-    from .export import atomic_folder, base_manifest, write_manifest
-    from .scenario import load_scenario
+    from crustflow.io.writers import atomic_folder, base_manifest, write_manifest
+    from crustflow.scenario.document import load_scenario
 
     scenario = load_scenario(scenario_path)
     if scenario.ensemble is None:
-        raise CrustflowInputError("the scenario has no [ensemble] table; add one with members, seed "
-                                  "and [ensemble.vary] (see the README)")
+        raise CrustflowInputError(
+            "the scenario has no [ensemble] table; add one with members, seed "
+            "and [ensemble.vary] (see the README)"
+        )
     began = time.perf_counter()
     with atomic_folder(out, scenario.input_paths) as tmp:
         ensemble = _run_ensemble(scenario, tmp, quiet)
@@ -406,13 +468,15 @@ def _ensemble(scenario_path: Path, out: Path, quiet: bool) -> int:
         manifest["ensemble"] = ensemble["manifest"]
         write_manifest(tmp, manifest, ensemble["written"])
     if not quiet:
-        print(f"crustflow: wrote {out.expanduser().resolve()} in "
-              f"{time.perf_counter() - began:.1f} s", file=sys.stderr)
+        print(
+            f"crustflow: wrote {out.expanduser().resolve()} in {time.perf_counter() - began:.1f} s",
+            file=sys.stderr,
+        )
     return 0
 
 
 def _demo(out: Path, quiet: bool, scenario_name: str) -> int:
-    from .samples import demo_scenario
+    from crustflow.samples.plateau import demo_scenario
 
     path = demo_scenario(scenario_name)
     if not quiet:
@@ -452,17 +516,34 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="N",
         help="rows per strip (default: about 0.5 M cells per strip); sets peak memory",
     )
-    run.add_argument("--chunk-size", type=int, default=None, metavar="N",
-                     help="chunk size in cells per side: strips of whole rows holding about N x N "
-                     "cells (default 724, i.e. 2^19 cells); sets peak memory per worker")
-    run.add_argument("--workers", type=int, default=None, metavar="N",
-                     help="compute strips in N local worker processes (dask.distributed)")
-    run.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                     help="compute strips on a running dask.distributed scheduler, e.g. "
-                     "tcp://10.0.0.5:8786; workers read the inputs by path (shared filesystem "
-                     "needed); only this process writes the outputs")
-    run.add_argument("--cog", action="store_true",
-                     help="write the GeoTIFFs as cloud-optimised GeoTIFFs (with overviews)")
+    run.add_argument(
+        "--chunk-size",
+        type=int,
+        default=None,
+        metavar="N",
+        help="chunk size in cells per side: strips of whole rows holding about N x N "
+        "cells (default 724, i.e. 2^19 cells); sets peak memory per worker",
+    )
+    run.add_argument(
+        "--workers",
+        type=int,
+        default=None,
+        metavar="N",
+        help="compute strips in N local worker processes (dask.distributed)",
+    )
+    run.add_argument(
+        "--scheduler",
+        default=None,
+        metavar="ADDRESS",
+        help="compute strips on a running dask.distributed scheduler, e.g. "
+        "tcp://10.0.0.5:8786; workers read the inputs by path (shared filesystem "
+        "needed); only this process writes the outputs",
+    )
+    run.add_argument(
+        "--cog",
+        action="store_true",
+        help="write the GeoTIFFs as cloud-optimised GeoTIFFs (with overviews)",
+    )
     demo = sub.add_parser(
         "demo",
         help="run the bundled sample scenario",
@@ -481,44 +562,73 @@ def build_parser() -> argparse.ArgumentParser:
     )
     demo.add_argument("--quiet", action="store_true", help="print nothing but errors")
     budget = sub.add_parser(
-        "budget", help="volume budgets across sections and regions",
+        "budget",
+        help="volume budgets across sections and regions",
         description="Volume budgets of channel flow across lines (sections) and polygons (regions) "
         "drawn in a GIS: writes budgets.csv, budgets.gpkg, flux_arrows.gpkg and figures, and "
         "prints the table. Reuses the fields.nc of an earlier run of the same scenario when there "
         "is one (--run), else computes the fields. Section flux is positive towards the right-hand "
         "side of the line walked from its first to its last vertex; a region's total is its net "
-        "inflow. 1 km^3/Myr = 1000 m^3/yr.\n\n" + CAUTION_HELP, **common)
+        "inflow. 1 km^3/Myr = 1000 m^3/yr.\n\n" + CAUTION_HELP,
+        **common,
+    )
     budget.add_argument("scenario", type=Path, help="scenario file (TOML)")
     budget.add_argument("--sections", type=Path, help="lines (any vector format, any CRS)")
     budget.add_argument("--regions", type=Path, help="polygons (any vector format, any CRS)")
-    budget.add_argument("--run", type=Path, default=Path("crustflow_out"),
-                        help="folder of an earlier run whose fields.nc to reuse "
-                        "(default: ./crustflow_out)")
-    budget.add_argument("--out", type=Path, default=Path("crustflow_budgets"),
-                        help="output folder (default: ./crustflow_budgets)")
+    budget.add_argument(
+        "--run",
+        type=Path,
+        default=Path("crustflow_out"),
+        help="folder of an earlier run whose fields.nc to reuse (default: ./crustflow_out)",
+    )
+    budget.add_argument(
+        "--out",
+        type=Path,
+        default=Path("crustflow_budgets"),
+        help="output folder (default: ./crustflow_budgets)",
+    )
     budget.add_argument("--quiet", action="store_true", help="print only the table and errors")
     profile = sub.add_parser(
-        "profile", help="velocity and stress profiles across the channel at sites",
+        "profile",
+        help="velocity and stress profiles across the channel at sites",
         description="Velocity, shear stress, viscosity (and temperature) across the channel at one "
         "site (--at X Y) or several (--points FILE): writes profile_<site>.csv and "
-        "profile_<site>.png and prints the flux and wall drag.\n\n" + CAUTION_HELP, **common)
+        "profile_<site>.png and prints the flux and wall drag.\n\n" + CAUTION_HELP,
+        **common,
+    )
     profile.add_argument("scenario", type=Path, help="scenario file (TOML)")
-    profile.add_argument("--at", nargs=2, type=float, metavar=("X", "Y"),
-                         help="site coordinates (in --crs, default the grid's CRS)")
+    profile.add_argument(
+        "--at",
+        nargs=2,
+        type=float,
+        metavar=("X", "Y"),
+        help="site coordinates (in --crs, default the grid's CRS)",
+    )
     profile.add_argument("--crs", default=None, help="CRS of --at, e.g. EPSG:4326 (lon lat)")
     profile.add_argument("--points", type=Path, help="vector file of Point sites (name attribute)")
-    profile.add_argument("--out", type=Path, default=Path("crustflow_profiles"),
-                         help="output folder (default: ./crustflow_profiles)")
+    profile.add_argument(
+        "--out",
+        type=Path,
+        default=Path("crustflow_profiles"),
+        help="output folder (default: ./crustflow_profiles)",
+    )
     profile.add_argument("--quiet", action="store_true", help="print only the table and errors")
     ensemble = sub.add_parser(
-        "ensemble", help="percentile maps and budget distributions over uncertain parameters",
+        "ensemble",
+        help="percentile maps and budget distributions over uncertain parameters",
         description="Sample the [ensemble] table's distributions (viscosity, thickness, densities, "
         "wall velocity...) and write percentile, mean, spread and exceedance maps (ensemble.nc and "
         "GeoTIFFs), member and budget tables and figures. The same runs with `crustflow run` when "
-        "the scenario has an [ensemble] table.\n\n" + CAUTION_HELP, **common)
+        "the scenario has an [ensemble] table.\n\n" + CAUTION_HELP,
+        **common,
+    )
     ensemble.add_argument("scenario", type=Path, help="scenario file (TOML) with [ensemble]")
-    ensemble.add_argument("--out", type=Path, default=Path("crustflow_ensemble"),
-                          help="output folder (default: ./crustflow_ensemble)")
+    ensemble.add_argument(
+        "--out",
+        type=Path,
+        default=Path("crustflow_ensemble"),
+        help="output folder (default: ./crustflow_ensemble)",
+    )
     ensemble.add_argument("--quiet", action="store_true", help="print nothing but errors")
     check = sub.add_parser(
         "check",
@@ -549,8 +659,11 @@ def _main(argv: list[str] | None) -> int:
         return 2
     try:
         if args.command == "run":
-            for flag, value in (("--strip-rows", args.strip_rows), ("--chunk-size", args.chunk_size),
-                                ("--workers", args.workers)):
+            for flag, value in (
+                ("--strip-rows", args.strip_rows),
+                ("--chunk-size", args.chunk_size),
+                ("--workers", args.workers),
+            ):
                 if value is not None and value < 1:
                     raise CrustflowInputError(f"{flag} must be a positive whole number, e.g. 2")
             if args.workers and args.scheduler:
@@ -558,13 +671,15 @@ def _main(argv: list[str] | None) -> int:
             rows = args.strip_rows
             if rows is None and args.chunk_size is not None:
                 rows = _rows_for_chunk(args.scenario, args.chunk_size)
-            return _run(args.scenario, args.out, args.quiet, rows, args.workers, args.scheduler,
-                        args.cog)
+            return _run(
+                args.scenario, args.out, args.quiet, rows, args.workers, args.scheduler, args.cog
+            )
         if args.command == "demo":
             return _demo(args.out, args.quiet, args.scenario)
         if args.command == "budget":
-            return _budget(args.scenario, args.sections, args.regions, args.run, args.out,
-                           args.quiet)
+            return _budget(
+                args.scenario, args.sections, args.regions, args.run, args.out, args.quiet
+            )
         if args.command == "profile":
             return _profile(args.scenario, args.at, args.points, args.crs, args.out, args.quiet)
         if args.command == "ensemble":

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 
-from .errors import CrustflowInputError
+from crustflow.errors import CrustflowInputError
 
 __all__ = ["DIMENSIONS", "parse_quantity", "parse_vector", "unit_conversion", "parse_prefactor"]
 
@@ -105,7 +105,9 @@ def unit_conversion(units: object, key: str, kind: str) -> tuple[float, float]:
     """
     dimensionality, si_unit, example = DIMENSIONS[kind]
     if not isinstance(units, str) or not units.strip():
-        raise CrustflowInputError(f"{key}: units must be a string, e.g. units = {example.split()[-1]}")
+        raise CrustflowInputError(
+            f"{key}: units must be a string, e.g. units = {example.split()[-1]}"
+        )
     import pint
 
     ureg = _registry()
@@ -113,11 +115,13 @@ def unit_conversion(units: object, key: str, kind: str) -> tuple[float, float]:
         zero = ureg.Quantity(0.0, units.strip())
         one = ureg.Quantity(1.0, units.strip())
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
-        raise CrustflowInputError(f"{key}: units {units!r} are not understood; write e.g. "
-                                  f"units = {example.split()[-1]}") from None
+        raise CrustflowInputError(
+            f"{key}: units {units!r} are not understood; write e.g. units = {example.split()[-1]}"
+        ) from None
     if not one.check(dimensionality):
-        raise CrustflowInputError(f"{key}: units {units!r} are not a {kind}; write e.g. "
-                                  f"units = {example.split()[-1]}")
+        raise CrustflowInputError(
+            f"{key}: units {units!r} are not a {kind}; write e.g. units = {example.split()[-1]}"
+        )
     offset = float(zero.to(si_unit).magnitude)
     return float(one.to(si_unit).magnitude) - offset, offset
 
@@ -135,8 +139,10 @@ def parse_prefactor(value: object, key: str, stress_exponent: float) -> float:
         target = ureg.Quantity(1.0, "Pa") ** (-stress_exponent) / ureg.Quantity(1.0, "s")
         return float((quantity / target).to("dimensionless").magnitude)
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
-        raise CrustflowInputError(f"{key} = {value!r} is not in units of stress^-n time^-1 with "
-                                  f"n = {stress_exponent:g}; write e.g. {key} = {example}") from None
+        raise CrustflowInputError(
+            f"{key} = {value!r} is not in units of stress^-n time^-1 with "
+            f"n = {stress_exponent:g}; write e.g. {key} = {example}"
+        ) from None
 
 
 def parse_vector(value: object, key: str, kind: str) -> tuple[float, float]:

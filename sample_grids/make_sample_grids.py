@@ -2,7 +2,7 @@
 
 from pathlib import Path
 
-from crustflow.samples import write_sample_grids
+from crustflow.samples.plateau import write_sample_grids
 
 if __name__ == "__main__":
     for path in write_sample_grids(Path(__file__).resolve().parent):

@@ -20,7 +20,7 @@ from conftest import airy
 
 import crustflow
 from crustflow import CrustflowInputError, ModelParameters
-from crustflow.budgets import (
+from crustflow.analyses.budgets import (
     CSV_COLUMNS,
     arrow_layers,
     budget_table,
@@ -30,7 +30,7 @@ from crustflow.budgets import (
     section_profile,
     write_budget_outputs,
 )
-from crustflow.maps import cell_areas, grid_geometry
+from crustflow.geometry.grid import cell_areas, grid_geometry
 
 UTM = "EPSG:32633"
 PARAMS = ModelParameters(channel_thickness=15e3, viscosity=1e19)
@@ -225,7 +225,7 @@ def test_covered_fraction_half_outside_and_across_nodata():
 
 def test_fields_read_back_from_netcdf_give_the_same_budget(tmp_path, projected_plateau):
     # Write-then-read-back: fields.nc (float32) opened with decode_coords="all"; float32 rounding.
-    from crustflow.export import write_netcdf
+    from crustflow.io.writers import write_netcdf
 
     ds, at = projected_plateau
     write_netcdf(ds, tmp_path / "fields.nc")

@@ -1,4 +1,4 @@
-"""Tests of crustflow.channel: one channel cell, physics first.
+"""Tests of crustflow.physics.channel: one channel cell, physics first.
 
 Sources are named beside each check. "value derived" marks numbers worked out by hand from the
 formulas of Turcotte & Schubert (2002), *Geodynamics* 2nd ed., section 6.2. The general-purpose
@@ -15,7 +15,8 @@ from hypothesis import strategies as st
 from numpy.testing import assert_allclose, assert_array_equal
 from scipy.integrate import quad, simpson, solve_bvp
 
-from crustflow.channel import (
+from crustflow.errors import CrustflowInputError
+from crustflow.physics.channel import (
     BACKFLOW_RTOL,
     ChannelSolution,
     backflow_drive_threshold,
@@ -25,7 +26,6 @@ from crustflow.channel import (
     velocity_profile,
     zero_flux_drive,
 )
-from crustflow.errors import CrustflowInputError
 
 #: Julian year (s): 365.25 d of 86400 s, the year used throughout crustflow (SCIENCE.md).
 YEAR = 365.25 * 86400.0

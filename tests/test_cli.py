@@ -13,7 +13,7 @@ import xarray as xr
 from conftest import SCENARIO, UTM, airy, bump, write_grid
 
 from crustflow.cli import main
-from crustflow.model import VARIABLES
+from crustflow.engine.api import VARIABLES
 
 
 @pytest.fixture(scope="module")
@@ -52,7 +52,7 @@ def test_netcdf_reads_back_with_crs_and_units(demo_run):
 
 
 def test_geotiffs_read_back(demo_run):
-    from crustflow.samples import demo_scenario
+    from crustflow.samples.plateau import demo_scenario
 
     with rasterio.open(demo_scenario("plateau").parent / "topography.tif") as topo:
         crs, transform, shape = topo.crs, topo.transform, topo.shape
@@ -245,12 +245,18 @@ def test_demo_writes_budgets(demo_run):
 
 
 def test_budget_command_reuses_run_and_matches(demo_run, tmp_path, capsys):
-    from crustflow.samples import demo_scenario
+    from crustflow.samples.plateau import demo_scenario
 
     scenario = demo_scenario("plateau")
     folder = scenario.parent
-    args = ["budget", str(scenario), "--sections", str(folder / "margins.geojson"),
-            "--regions", str(folder / "basins.geojson")]
+    args = [
+        "budget",
+        str(scenario),
+        "--sections",
+        str(folder / "margins.geojson"),
+        "--regions",
+        str(folder / "basins.geojson"),
+    ]
     # With the demo's run: its fields.nc is reused (no recomputation).
     assert main(args + ["--run", str(demo_run), "--out", str(tmp_path / "b1")]) == 0
     err = capsys.readouterr()
@@ -270,13 +276,18 @@ def test_budget_command_reuses_run_and_matches(demo_run, tmp_path, capsys):
     ("content", "message"),
     [
         ('{"type": "FeatureCollection", "features": []}', r"has no features"),
-        ('{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": '
-         '"urn:ogc:def:crs:EPSG::32633"}}, "features": [{"type": "Feature", "properties": {}, '
-         '"geometry": {"type": "Point", "coordinates": [400000, 5100000]}}]}', r"Point"),
-        ('{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": '
-         '"urn:ogc:def:crs:EPSG::32633"}}, "features": [{"type": "Feature", "properties": {}, '
-         '"geometry": {"type": "LineString", "coordinates": [[900000, 100000], [910000, 100000]]}}]}',
-         r"outside the grid"),
+        (
+            '{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": '
+            '"urn:ogc:def:crs:EPSG::32633"}}, "features": [{"type": "Feature", "properties": {}, '
+            '"geometry": {"type": "Point", "coordinates": [400000, 5100000]}}]}',
+            r"Point",
+        ),
+        (
+            '{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": '
+            '"urn:ogc:def:crs:EPSG::32633"}}, "features": [{"type": "Feature", "properties": {}, '
+            '"geometry": {"type": "LineString", "coordinates": [[900000, 100000], [910000, 100000]]}}]}',
+            r"outside the grid",
+        ),
     ],
 )
 def test_bad_sections_exit_2(scenario_dir, capsys, content, message):
@@ -284,8 +295,16 @@ def test_bad_sections_exit_2(scenario_dir, capsys, content, message):
 
     (scenario_dir / "lines.geojson").write_text(content)
     out = scenario_dir / "out"
-    code = main(["budget", str(scenario_dir / "scenario.toml"), "--sections",
-                 str(scenario_dir / "lines.geojson"), "--out", str(out)])
+    code = main(
+        [
+            "budget",
+            str(scenario_dir / "scenario.toml"),
+            "--sections",
+            str(scenario_dir / "lines.geojson"),
+            "--out",
+            str(out),
+        ]
+    )
     err = capsys.readouterr().err.strip()
     assert code == 2 and len(err.splitlines()) == 1 and re.search(message, err), err
     assert not out.exists()
@@ -295,15 +314,24 @@ def test_sections_without_crs_exit_2(scenario_dir, capsys):
     import geopandas as gpd
     from shapely.geometry import LineString
 
-    lines = gpd.GeoDataFrame({"name": ["a"]}, geometry=[LineString([(350e3, 5100e3),
-                                                                    (450e3, 5100e3)])])
+    lines = gpd.GeoDataFrame(
+        {"name": ["a"]}, geometry=[LineString([(350e3, 5100e3), (450e3, 5100e3)])]
+    )
     import warnings
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UserWarning)  # pyogrio warns about the missing CRS
         lines.to_file(scenario_dir / "nocrs.gpkg", driver="GPKG")
-    code = main(["budget", str(scenario_dir / "scenario.toml"), "--sections",
-                 str(scenario_dir / "nocrs.gpkg"), "--out", str(scenario_dir / "out")])
+    code = main(
+        [
+            "budget",
+            str(scenario_dir / "scenario.toml"),
+            "--sections",
+            str(scenario_dir / "nocrs.gpkg"),
+            "--out",
+            str(scenario_dir / "out"),
+        ]
+    )
     err = capsys.readouterr().err.strip()
     assert code == 2 and len(err.splitlines()) == 1 and "CRS" in err, err
     assert not (scenario_dir / "out").exists()
@@ -313,13 +341,14 @@ def test_api_budget_table_matches_command(demo_run):
     import pandas as pd
 
     import crustflow
-    from crustflow.samples import demo_scenario
+    from crustflow.samples.plateau import demo_scenario
 
     scenario = crustflow.load_scenario(demo_scenario("plateau"))
     table = crustflow.budget_table(crustflow.solve(scenario), scenario.sections, scenario.regions)
     written = pd.read_csv(demo_run / "budgets.csv")
-    np.testing.assert_allclose(table["volume_flux_m3_per_yr"], written["volume_flux_m3_per_yr"],
-                               rtol=1e-5)  # the command reads float32 fields back from fields.nc
+    np.testing.assert_allclose(
+        table["volume_flux_m3_per_yr"], written["volume_flux_m3_per_yr"], rtol=1e-5
+    )  # the command reads float32 fields back from fields.nc
 
 
 ENSEMBLE = """
@@ -347,6 +376,8 @@ def test_run_with_ensemble_and_ensemble_command(scenario_dir):
 
 
 def test_ensemble_command_needs_the_table(scenario_dir, capsys):
-    assert main(["ensemble", str(scenario_dir / "scenario.toml"), "--out",
-                 str(scenario_dir / "o")]) == 2
+    assert (
+        main(["ensemble", str(scenario_dir / "scenario.toml"), "--out", str(scenario_dir / "o")])
+        == 2
+    )
     assert "has no [ensemble] table" in capsys.readouterr().err

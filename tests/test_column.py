@@ -7,9 +7,10 @@ import tomllib
 import numpy as np
 import pytest
 
-from crustflow import column, load
 from crustflow.errors import CrustflowInputError
-from crustflow.maps import GridGeometry, grid_geometry
+from crustflow.geometry.grid import GridGeometry, grid_geometry
+from crustflow.physics import column
+from crustflow.physics import isostasy as load
 
 G = 9.81
 RHO_C, RHO_W = 2800.0, 1030.0
@@ -282,7 +283,7 @@ def test_wedge_sample_writes_a_consistent_small_scenario(tmp_path):
     # consistent (roof ends at the salt top, salt within the crust).
     import rasterio
 
-    from crustflow.wedge_sample import write_wedge_sample
+    from crustflow.samples.wedge import write_wedge_sample
 
     scenario = write_wedge_sample(tmp_path / "wedge")
     folder = scenario.parent

@@ -23,18 +23,18 @@ from conftest import airy, bump, write_grid
 
 import crustflow
 from crustflow import CrustflowInputError, ModelParameters
-from crustflow.budgets import budget_table
-from crustflow.ensemble import (
+from crustflow.analyses.budgets import budget_table
+from crustflow.analyses.ensemble.report import sorted_percentiles
+from crustflow.analyses.ensemble.run import (
     FAST_VARIABLES,
     fast_fields,
     parse_ensemble,
     run_ensemble,
     sample_members,
 )
-from crustflow.ensemble_report import sorted_percentiles
-from crustflow.fields import VARIABLES, crust_thickness_of, fields_si, to_practical
-from crustflow.grids import read_inputs
-from crustflow.maps import grid_geometry
+from crustflow.engine.fields import VARIABLES, crust_thickness_of, fields_si, to_practical
+from crustflow.geometry.grid import grid_geometry
+from crustflow.io.grids import read_inputs
 
 UTM = "EPSG:32633"
 SHAPE = (18, 22)
@@ -296,7 +296,10 @@ def test_latin_hypercube_puts_one_member_in_each_stratum(n):
     members, table = sample_members(spec, params)
     assert len(members) == n and list(table["member"]) == list(range(n))
     for dim in spec.dimensions():
-        si = table[dim.label].to_numpy() / crustflow.ensemble.VARIABLE_KEYS[dim.key].factor
+        si = (
+            table[dim.label].to_numpy()
+            / crustflow.analyses.ensemble.run.VARIABLE_KEYS[dim.key].factor
+        )
         strata = np.floor(dim.distribution.cdf(si) * n).astype(int)
         assert sorted(strata) == list(range(n)), dim.label
     # The members carry the sampled values; what is not varied is kept.
@@ -344,7 +347,7 @@ def test_sorted_percentiles_equal_numpy_bit_for_bit():
 @pytest.mark.parametrize("geographic", [False, True])
 @pytest.mark.parametrize("mode", ["grid", "moho", "airy"])
 def test_fast_path_member_equals_fields_si(geographic, mode):
-    # Reference: crustflow.fields.fields_si per member. The decomposition into base maps is exact
+    # Reference: crustflow.engine.fields.fields_si per member. The decomposition into base maps is exact
     # algebra (fast_fields' Notes); what differs is rounding, ~1e-13 of the largest value. The
     # one-cell extras that divide or locate a maximum (peak height, wall-driven share) amplify it
     # a little more.
@@ -427,7 +430,7 @@ def test_fast_path_equals_fallback(tmp_path, geographic, airy_crust):
 
 
 def test_budget_distributions_equal_budget_table_member_by_member(run_case, tmp_path):
-    # Reference: crustflow.budgets.budget_table on compute_fields, one member at a time.
+    # Reference: crustflow.analyses.budgets.budget_table on compute_fields, one member at a time.
     scenario, spec, out, summary = run_case
     members, _ = sample_members(spec, scenario.parameters)
     grids = read_inputs(scenario)
@@ -749,7 +752,9 @@ def test_what_ensembles_cannot_do_yet_is_refused(tmp_path, monkeypatch):
     ):
         run_ensemble(scenario, spec, tmp_path / "o")
     # A distribution whose inverse CDF fails (scipy guards the far tails; the check stays).
-    monkeypatch.setattr(crustflow.ensemble.Distribution, "ppf", lambda self, u: u * np.nan)
+    monkeypatch.setattr(
+        crustflow.analyses.ensemble.run.Distribution, "ppf", lambda self, u: u * np.nan
+    )
     with pytest.raises(
         CrustflowInputError,
         match=r'"channel.viscosity": the distribution gives '

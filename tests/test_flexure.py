@@ -11,9 +11,9 @@ import pytest
 from pyproj import Geod
 from scipy import ndimage
 
-from crustflow import flexure
 from crustflow.errors import CrustflowInputError
-from crustflow.maps import WGS84, GridGeometry
+from crustflow.geometry.grid import WGS84, GridGeometry
+from crustflow.physics import flexure
 
 G = 9.81
 DRHO = 600.0  # restoring density contrast, kg/m^3 (invented test value)
@@ -202,7 +202,7 @@ def test_local_frame_error_small_grid_against_pyproj(caplog):
     assert frame.relative_error < 0.01
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        with caplog.at_level(logging.DEBUG, logger="crustflow.flexure"):
+        with caplog.at_level(logging.DEBUG, logger="crustflow.physics.flexure"):
             out = flexure.gaussian_smoothing(np.ones(geom.shape), geom, sigma=5e3)
     assert "relative spacing error 0.00" in caplog.text
     np.testing.assert_allclose(out, 1.0, rtol=1e-13)

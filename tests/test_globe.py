@@ -16,8 +16,9 @@ import xarray as xr
 
 import crustflow
 from crustflow import ModelParameters
-from crustflow.budgets import region_budgets, section_budgets, section_profile
-from crustflow.maps import (
+from crustflow.analyses.budgets import region_budgets, section_budgets, section_profile
+from crustflow.engine.strips import HALO_ROWS
+from crustflow.geometry.grid import (
     GridGeometry,
     cell_areas,
     divergence,
@@ -25,8 +26,7 @@ from crustflow.maps import (
     gradient,
     grid_geometry,
 )
-from crustflow.stream import HALO_ROWS
-from crustflow.vectors import geodesic_densify
+from crustflow.io.features import geodesic_densify
 
 #: WGS84 semi-major axis, m, and inverse flattening. NIMA TR8350.2 (3rd ed., 2000), table 3.1.
 A_WGS84 = 6378137.0
@@ -198,7 +198,7 @@ def test_rows_centred_on_the_poles():
 
 @pytest.mark.parametrize("strip", [1, 3, 7, 90])
 def test_strips_of_rows_equal_the_whole_globe(strip):
-    # The strip scheme of crustflow.stream: HALO_ROWS rows on each inner side, full width, the
+    # The strip scheme of crustflow.engine.strips: HALO_ROWS rows on each inner side, full width, the
     # transform's spacing; gradient then divergence of the gradient (depth 2). Bit for bit.
     lon, lat = global_axes(2.0)
     spacing = (2.0, -2.0)

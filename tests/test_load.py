@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from crustflow import load
-from crustflow.maps import grid_geometry
+from crustflow.geometry.grid import grid_geometry
+from crustflow.physics import isostasy as load
 
 G = 9.81
 RHO_C, RHO_M, RHO_W = 2800.0, 3300.0, 1030.0

@@ -20,8 +20,9 @@ def run(path, out):
 
 def test_zero_filters_equal_no_filters(scenario_dir):
     # Te = 0 and no smoothing return the load unchanged (SCIENCE.md: response 1 at D = 0).
-    (scenario_dir / "f.toml").write_text(SCENARIO + '[load]\nelastic_thickness = "0 km"\n'
-                                         'smoothing = "0 km"\n')
+    (scenario_dir / "f.toml").write_text(
+        SCENARIO + '[load]\nelastic_thickness = "0 km"\nsmoothing = "0 km"\n'
+    )
     a = run(scenario_dir / "scenario.toml", scenario_dir / "o1")
     b = run(scenario_dir / "f.toml", scenario_dir / "o2")
     np.testing.assert_array_equal(a.flux_east.values, b.flux_east.values)
@@ -35,21 +36,29 @@ def test_elastic_crust_reduces_the_drive(scenario_dir):
     b = run(scenario_dir / "f.toml", scenario_dir / "o2")
     assert np.nanmax(np.abs(b.drive_east.values)) < 0.8 * np.nanmax(np.abs(a.drive_east.values))
     assert np.nanmean(b.overburden_pressure.values) == pytest.approx(
-        np.nanmean(a.overburden_pressure.values), rel=1e-6)
+        np.nanmean(a.overburden_pressure.values), rel=1e-6
+    )
 
 
 def test_equal_density_roof_layer_changes_nothing(scenario_dir):
     # A roof layer as dense as the crust is crust by another name: identical load (hand sum).
     write_grid(scenario_dir / "sed.tif", np.full(bump().shape, 2000.0))
-    text = SCENARIO + ('[[roof.layers]]\nname = "sediments"\n'
-                       'thickness = { grid = "sed.tif", units = "m" }\ndensity = "2800 kg/m^3"\n')
+    text = SCENARIO + (
+        '[[roof.layers]]\nname = "sediments"\n'
+        'thickness = { grid = "sed.tif", units = "m" }\ndensity = "2800 kg/m^3"\n'
+    )
     (scenario_dir / "r.toml").write_text(text)
     a = run(scenario_dir / "scenario.toml", scenario_dir / "o1")
     b = run(scenario_dir / "r.toml", scenario_dir / "o2")
-    np.testing.assert_allclose(b.overburden_pressure.values, a.overburden_pressure.values,
-                               rtol=1e-6)
-    np.testing.assert_allclose(b.flux_east.values, a.flux_east.values, rtol=1e-4,
-                               atol=1e-6 * np.nanmax(np.abs(a.flux_east.values)))
+    np.testing.assert_allclose(
+        b.overburden_pressure.values, a.overburden_pressure.values, rtol=1e-6
+    )
+    np.testing.assert_allclose(
+        b.flux_east.values,
+        a.flux_east.values,
+        rtol=1e-4,
+        atol=1e-6 * np.nanmax(np.abs(a.flux_east.values)),
+    )
 
 
 def test_wedge_sample_runs(tmp_path):
@@ -68,9 +77,12 @@ def test_placement_by_depths_flags_cells(tmp_path):
     base[:2] = 10e3  # base above top in two rows: flagged and excluded, not refused
     write_grid(tmp_path / "top.tif", top)
     write_grid(tmp_path / "base.tif", base)
-    text = SCENARIO.replace('thickness = "15 km"\n', 'placement = "depths"\n'
-                            'top_depth = { grid = "top.tif", units = "m" }\n'
-                            'base_depth = { grid = "base.tif", units = "m" }\n')
+    text = SCENARIO.replace(
+        'thickness = "15 km"\n',
+        'placement = "depths"\n'
+        'top_depth = { grid = "top.tif", units = "m" }\n'
+        'base_depth = { grid = "base.tif", units = "m" }\n',
+    )
     (tmp_path / "s.toml").write_text(text)
     ds = crustflow.solve(crustflow.load_scenario(tmp_path / "s.toml"))
     assert np.isnan(ds.flux_east.values[:2]).all()
@@ -80,25 +92,34 @@ def test_placement_by_depths_flags_cells(tmp_path):
 @pytest.mark.parametrize(
     ("extra", "setup", "message"),
     [
-        ('[[roof.layers]]\nname = "lavas"\nthickness = "30 km"\ndensity = "2900 kg/m^3"\n', None,
-         r"roof layers reach below the channel top in \d+ cells"),
-        ('[load]\nelastic_thickness = "-5 km"\n', None, r"load.elastic_thickness must not be "
-         r"negative"),
+        (
+            '[[roof.layers]]\nname = "lavas"\nthickness = "30 km"\ndensity = "2900 kg/m^3"\n',
+            None,
+            r"roof layers reach below the channel top in \d+ cells",
+        ),
+        (
+            '[load]\nelastic_thickness = "-5 km"\n',
+            None,
+            r"load.elastic_thickness must not be "
+            r"negative",
+        ),
         ('[load]\nsmoothing = "-5 km"\n', None, r"load.smoothing must not be negative"),
     ],
 )
 def test_bad_load_inputs_exit_2(scenario_dir, capsys, extra, setup, message):
     (scenario_dir / "bad.toml").write_text(SCENARIO + extra)
-    code = main(["run", str(scenario_dir / "bad.toml"), "--out", str(scenario_dir / "out"),
-                 "--quiet"])
+    code = main(
+        ["run", str(scenario_dir / "bad.toml"), "--out", str(scenario_dir / "out"), "--quiet"]
+    )
     err = capsys.readouterr().err.strip()
     assert code == 2 and len(err.splitlines()) == 1 and re.search(message, err), err
     assert not (scenario_dir / "out").exists()
 
 
 def test_channel_base_above_top_exit_2(scenario_dir, capsys):
-    text = SCENARIO.replace('thickness = "15 km"\n', 'placement = "depths"\n'
-                            'top_depth = "30 km"\nbase_depth = "20 km"\n')
+    text = SCENARIO.replace(
+        'thickness = "15 km"\n', 'placement = "depths"\ntop_depth = "30 km"\nbase_depth = "20 km"\n'
+    )
     (scenario_dir / "bad.toml").write_text(text)
     code = main(["run", str(scenario_dir / "bad.toml"), "--out", str(scenario_dir / "out")])
     err = capsys.readouterr().err.strip()

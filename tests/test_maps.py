@@ -1,4 +1,4 @@
-"""Tests of crustflow.maps: ellipsoid geometry, gradients, finite-volume divergence, azimuths.
+"""Tests of crustflow.geometry.grid: ellipsoid geometry, gradients, finite-volume divergence, azimuths.
 
 Reference values name their source beside the check. pyproj.Geod (GeographicLib geodesics) is the
 independent reference library for distances, areas and azimuths.
@@ -11,7 +11,7 @@ import pyproj
 import pytest
 
 from crustflow.errors import CrustflowInputError
-from crustflow.maps import (
+from crustflow.geometry.grid import (
     WGS84,
     Ellipsoid,
     GridGeometry,
@@ -38,7 +38,7 @@ KM2 = 1e6
 
 
 def radii(phi_deg):
-    """N and M of WGS84 at latitude phi (deg), written out independently of crustflow.maps."""
+    """N and M of WGS84 at latitude phi (deg), written out independently of crustflow.geometry.grid."""
     f = 1.0 / INVF_WGS84
     e2 = f * (2 - f)
     w = np.sqrt(1 - e2 * np.sin(np.radians(phi_deg)) ** 2)
@@ -439,7 +439,7 @@ def test_bad_inputs_raise_with_fix_it_messages():
 
 def test_interpolated_convergence_matches_pyproj_at_every_cell():
     # Reference library: pyproj get_factors at every cell of a 250 m UTM grid at the zone's western
-    # edge near 63 N; the interpolated map (crustflow.maps.CONVERGENCE_SPACING) agrees to 1e-6 degree.
+    # edge near 63 N; the interpolated map (crustflow.geometry.grid.CONVERGENCE_SPACING) agrees to 1e-6 degree.
     x = 160e3 + 250.0 * np.arange(401)
     y = 7000e3 - 250.0 * np.arange(41)
     geom = grid_geometry(x, y, "EPSG:32633")

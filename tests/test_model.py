@@ -10,7 +10,7 @@ from conftest import airy, bump, write_grid
 import crustflow
 from crustflow import ModelParameters
 from crustflow.constants import SECONDS_PER_YEAR
-from crustflow.maps import WGS84, cell_areas, grid_geometry
+from crustflow.geometry.grid import WGS84, cell_areas, grid_geometry
 
 G, RHO = 9.81, 2800.0
 PARAMS = ModelParameters(channel_thickness=15e3, viscosity=1e19)

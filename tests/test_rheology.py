@@ -1,4 +1,5 @@
-"""Tests of crustflow.rheology and crustflow.flowlaws: flow laws, depth-varying and power-law cells.
+"""Tests of crustflow.physics.rheology and crustflow.physics.flowlaws: flow laws, depth-varying and
+power-law cells.
 
 Physics first; the source of each check is named beside it. "value derived" marks numbers worked
 out by hand from the formulas cited. The general-purpose second opinions are SciPy's
@@ -18,13 +19,9 @@ from numpy.testing import assert_allclose, assert_array_equal
 from scipy.integrate import IntegrationWarning, quad, solve_bvp, solve_ivp
 from scipy.optimize import root
 
-from crustflow.channel import (
-    backflow_drive_threshold,
-    channel_flow,
-    flux_from_moments,
-)
 from crustflow.errors import CrustflowInputError
-from crustflow.rheology import (
+from crustflow.physics.channel import backflow_drive_threshold, channel_flow, flux_from_moments
+from crustflow.physics.rheology import (
     FLOW_LAWS,
     GAS_CONSTANT,
     FlowLaw,

@@ -9,7 +9,7 @@ from conftest import SCENARIO, airy, bump, write_grid
 
 import crustflow
 from crustflow.cli import main
-from crustflow.model import VARIABLES
+from crustflow.engine.api import VARIABLES
 
 
 def _compare(scenario_path, out, strip_rows):
@@ -108,10 +108,27 @@ def test_local_cluster_writes_the_same_files(scenario_dir):
     text = SCENARIO + '[walls]\nupper_velocity = ["3 mm/yr", "-1 mm/yr"]\n'
     (scenario_dir / "s.toml").write_text(text)
     a, b = scenario_dir / "local", scenario_dir / "cluster"
-    assert main(["run", str(scenario_dir / "s.toml"), "--out", str(a), "--quiet",
-                 "--strip-rows", "7"]) == 0
-    assert main(["run", str(scenario_dir / "s.toml"), "--out", str(b), "--quiet",
-                 "--strip-rows", "7", "--workers", "2", "--cog"]) == 0
+    assert (
+        main(["run", str(scenario_dir / "s.toml"), "--out", str(a), "--quiet", "--strip-rows", "7"])
+        == 0
+    )
+    assert (
+        main(
+            [
+                "run",
+                str(scenario_dir / "s.toml"),
+                "--out",
+                str(b),
+                "--quiet",
+                "--strip-rows",
+                "7",
+                "--workers",
+                "2",
+                "--cog",
+            ]
+        )
+        == 0
+    )
     with xr.open_dataset(a / "fields.nc") as x, xr.open_dataset(b / "fields.nc") as y:
         for name in x.data_vars:
             np.testing.assert_array_equal(x[name].values, y[name].values, err_msg=name)

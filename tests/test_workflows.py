@@ -27,7 +27,11 @@ def test_workflow_runs_and_saves_its_figure(tmp_path, script, figure):
     env = {**os.environ, "MPLBACKEND": "Agg"}
     result = subprocess.run(
         [sys.executable, str(WORKFLOWS / script), "--out", str(out)],
-        capture_output=True, text=True, env=env, cwd=tmp_path, timeout=120,
+        capture_output=True,
+        text=True,
+        env=env,
+        cwd=tmp_path,
+        timeout=120,
     )
     assert result.returncode == 0, result.stderr
     path = out / figure

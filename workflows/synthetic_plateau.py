@@ -34,7 +34,7 @@ from scipy.integrate import simpson
 
 import crustflow
 from crustflow.constants import SECONDS_PER_YEAR
-from crustflow.model import CAUTION
+from crustflow.engine.api import CAUTION
 
 #: Projected frame of the synthetic grid (UTM zone 25N, over open ocean; a frame only).
 CRS = "EPSG:32625"
@@ -76,16 +76,24 @@ def synthetic_grids() -> tuple[xr.DataArray, xr.DataArray]:
     xx, yy = np.meshgrid(x, y)
     w_edge, s_edge, e_edge, n_edge = EDGES
     w_width, s_width, e_width, n_width = MARGIN_WIDTHS
-    shape = (_ramp(xx, w_edge, w_width) * (1.0 - _ramp(xx, e_edge, e_width))
-             * _ramp(yy, s_edge, s_width) * (1.0 - _ramp(yy, n_edge, n_width)))
+    shape = (
+        _ramp(xx, w_edge, w_width)
+        * (1.0 - _ramp(xx, e_edge, e_width))
+        * _ramp(yy, s_edge, s_width)
+        * (1.0 - _ramp(yy, n_edge, n_width))
+    )
     elevation = LOWLAND + PLATEAU_HEIGHT * shape
     thickness = REFERENCE_THICKNESS + elevation * RHO_MANTLE / (RHO_MANTLE - RHO_CRUST)
-    coords = {"y": ("y", y, {"units": "m", "long_name": "northing"}),
-              "x": ("x", x, {"units": "m", "long_name": "easting"})}
-    topography = xr.DataArray(elevation, coords=coords, dims=("y", "x"), name="topography",
-                              attrs={"units": "m"}).rio.write_crs(CRS)
-    crust = xr.DataArray(thickness, coords=coords, dims=("y", "x"), name="crust_thickness",
-                         attrs={"units": "m"}).rio.write_crs(CRS)
+    coords = {
+        "y": ("y", y, {"units": "m", "long_name": "northing"}),
+        "x": ("x", x, {"units": "m", "long_name": "easting"}),
+    }
+    topography = xr.DataArray(
+        elevation, coords=coords, dims=("y", "x"), name="topography", attrs={"units": "m"}
+    ).rio.write_crs(CRS)
+    crust = xr.DataArray(
+        thickness, coords=coords, dims=("y", "x"), name="crust_thickness", attrs={"units": "m"}
+    ).rio.write_crs(CRS)
     return topography, crust
 
 
@@ -110,10 +118,13 @@ def volume_budget(ds: xr.Dataset) -> tuple[float, float, float]:
     dx, dy = abs(float(ds.x[1] - ds.x[0])), abs(float(ds.y[1] - ds.y[0]))  # m, projected grid
     rate = ds["thickening_rate"].values * 1e-3 * dx * dy  # m^3/yr per cell
     q_e, q_n = ds["flux_east"].values, ds["flux_north"].values  # m^2/yr; row 0 is the north edge
-    outflow = (np.nansum(q_e[:, -1] - q_e[:, 0]) * dy + np.nansum(q_n[0, :] - q_n[-1, :]) * dx)
+    outflow = np.nansum(q_e[:, -1] - q_e[:, 0]) * dy + np.nansum(q_n[0, :] - q_n[-1, :]) * dx
     km3 = 1e9
-    return (float(np.nansum(np.clip(rate, 0.0, None))) / km3, float(np.nansum(rate)) / km3,
-            float(outflow) / km3)
+    return (
+        float(np.nansum(np.clip(rate, 0.0, None))) / km3,
+        float(np.nansum(rate)) / km3,
+        float(outflow) / km3,
+    )
 
 
 def cell_velocity(ds: xr.Dataset, params: crustflow.ModelParameters, iy: int, ix: int) -> dict:
@@ -138,8 +149,14 @@ def cell_velocity(ds: xr.Dataset, params: crustflow.ModelParameters, iy: int, ix
     drive_n = float(ds["drive_north"][iy, ix])
     zeta = np.linspace(0.0, params.channel_thickness, 61)
     u_e, u_n, tau_e, tau_n = crustflow.velocity_profile(
-        zeta, drive_e, drive_n, params.channel_thickness, params.viscosity,
-        wall_east=params.wall_east, wall_north=params.wall_north)
+        zeta,
+        drive_e,
+        drive_n,
+        params.channel_thickness,
+        params.viscosity,
+        wall_east=params.wall_east,
+        wall_north=params.wall_north,
+    )
     q_e, q_n = float(ds["flux_east"][iy, ix]), float(ds["flux_north"][iy, ix])
     along = np.array([q_e, q_n]) / np.hypot(q_e, q_n)
     u = (u_e * along[0] + u_n * along[1]) * 1e3 * SECONDS_PER_YEAR
@@ -147,8 +164,14 @@ def cell_velocity(ds: xr.Dataset, params: crustflow.ModelParameters, iy: int, ix
     return {"zeta": zeta, "u": u, "tau": tau, "flux": float(np.hypot(q_e, q_n))}
 
 
-def draw(ds: xr.Dataset, topography: xr.DataArray, profile: dict, cell: tuple[int, int],
-         params: crustflow.ModelParameters, path: Path) -> Path:
+def draw(
+    ds: xr.Dataset,
+    topography: xr.DataArray,
+    profile: dict,
+    cell: tuple[int, int],
+    params: crustflow.ModelParameters,
+    path: Path,
+) -> Path:
     """Save the figure: flux map, west-east cross-section and one cell's velocity profile.
 
     ``profile`` is the output of :func:`cell_velocity` for the cell ``(row, column)``; the PNG is
@@ -169,20 +192,34 @@ def draw(ds: xr.Dataset, topography: xr.DataArray, profile: dict, cell: tuple[in
     ax_sec, ax_flux, ax_rate = right.subplots(3, 1, sharex=True)
     half = (x_km[1] - x_km[0]) / 2
     extent = (x_km[0] - half, x_km[-1] + half, y_km[-1] - half, y_km[0] + half)
-    image = ax_map.imshow(ds["flux_magnitude"].values, extent=extent, origin="upper",
-                          cmap="cividis", interpolation="nearest")
+    image = ax_map.imshow(
+        ds["flux_magnitude"].values,
+        extent=extent,
+        origin="upper",
+        cmap="cividis",
+        interpolation="nearest",
+    )
     levels = [1000.0, 2000.0, 3000.0, 4000.0]
-    contours = ax_map.contour(x_km, y_km, topography.values, levels=levels, colors="white",
-                              linewidths=0.6, alpha=0.7)
+    contours = ax_map.contour(
+        x_km, y_km, topography.values, levels=levels, colors="white", linewidths=0.6, alpha=0.7
+    )
     ax_map.clabel(contours, fmt=lambda v: f"{v / 1e3:g} km", fontsize=7)
     ax_map.axhline(float(row.y) / 1e3, color="white", linestyle="--", linewidth=1.2)
     iy, ix = cell
-    ax_map.plot(x_km[ix], y_km[iy], marker="o", markerfacecolor="none", markeredgecolor="white",
-                markersize=9, markeredgewidth=1.5)
+    ax_map.plot(
+        x_km[ix],
+        y_km[iy],
+        marker="o",
+        markerfacecolor="none",
+        markeredgecolor="white",
+        markersize=9,
+        markeredgewidth=1.5,
+    )
     ax_map.set_xlabel("easting (km)")
     ax_map.set_ylabel("northing (km)")
-    ax_map.set_title("Flux magnitude; elevation contours, section (dashed), cell (circle)",
-                     fontsize=9)
+    ax_map.set_title(
+        "Flux magnitude; elevation contours, section (dashed), cell (circle)", fontsize=9
+    )
     bar = left.colorbar(image, ax=ax_map, shrink=0.8, location="bottom")
     bar.set_label("channel flux per unit width (m²/yr)")
 
@@ -202,8 +239,9 @@ def draw(ds: xr.Dataset, topography: xr.DataArray, profile: dict, cell: tuple[in
     ax_flux.set_ylabel("eastward flux (m²/yr)")
 
     ax_rate.axhline(0.0, color="0.6", linewidth=0.8)
-    ax_rate.plot(x_km, row["thickening_rate"].values, color=colours(0.15),
-                 label="crustal thickening")
+    ax_rate.plot(
+        x_km, row["thickening_rate"].values, color=colours(0.15), label="crustal thickening"
+    )
     ax_rate.plot(x_km, row["uplift_rate"].values, color=colours(0.7), label="isostatic uplift")
     ax_rate.set_ylabel("rate (mm/yr)")
     ax_rate.set_xlabel("easting (km)")
@@ -211,17 +249,24 @@ def draw(ds: xr.Dataset, topography: xr.DataArray, profile: dict, cell: tuple[in
 
     zeta_km = profile["zeta"] / 1e3
     ax_vel.plot(profile["u"], zeta_km, color=colours(0.15))
-    ax_vel.axvline(profile["flux"] / params.channel_thickness * 1e3, color=colours(0.7),
-                   linestyle="--", label="mean velocity")
+    ax_vel.axvline(
+        profile["flux"] / params.channel_thickness * 1e3,
+        color=colours(0.7),
+        linestyle="--",
+        label="mean velocity",
+    )
     ax_vel.set_xlabel("velocity along the flux (mm/yr)")
     ax_vel.set_ylabel("height above channel base (km)")
-    ax_vel.set_title(f"Channel velocity in the circled cell (flux {profile['flux']:.0f} m²/yr)",
-                     fontsize=9)
+    ax_vel.set_title(
+        f"Channel velocity in the circled cell (flux {profile['flux']:.0f} m²/yr)", fontsize=9
+    )
     ax_vel.legend(fontsize=8)
 
-    fig.suptitle("Synthetic tanh-margined plateau (invented grid): channel "
-                 f"{params.channel_thickness / 1e3:g} km thick, viscosity "
-                 f"{params.viscosity:.0e} Pa s")
+    fig.suptitle(
+        "Synthetic tanh-margined plateau (invented grid): channel "
+        f"{params.channel_thickness / 1e3:g} km thick, viscosity "
+        f"{params.viscosity:.0e} Pa s"
+    )
     fig.text(0.005, 0.002, CAUTION, fontsize=6, ha="left", va="bottom")
     fig.savefig(path, dpi=130)
     plt.close(fig)
@@ -231,37 +276,51 @@ def draw(ds: xr.Dataset, topography: xr.DataArray, profile: dict, cell: tuple[in
 def main(argv: list[str] | None = None) -> int:
     """Build the grids, compute the fields, print the numbers and save the figure."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--out", type=Path, default=Path("workflows_out"),
-                        help="folder for the figure (default: workflows_out/)")
+    parser.add_argument(
+        "--out",
+        type=Path,
+        default=Path("workflows_out"),
+        help="folder for the figure (default: workflows_out/)",
+    )
     args = parser.parse_args(argv)
 
     topography, crust = synthetic_grids()
-    params = crustflow.ModelParameters(channel_thickness=15e3, viscosity=1e19,
-                                       rho_crust=RHO_CRUST, rho_mantle=RHO_MANTLE)
+    params = crustflow.ModelParameters(
+        channel_thickness=15e3, viscosity=1e19, rho_crust=RHO_CRUST, rho_mantle=RHO_MANTLE
+    )
     ds = crustflow.compute_fields(topography, crust_thickness=crust, parameters=params)
 
     flux = ds["flux_magnitude"]
     iy, ix = np.unravel_index(int(np.nanargmax(flux.values)), flux.shape)
     inflow, net, outflow = volume_budget(ds)
     print(f"grid: {ds.sizes['y']} x {ds.sizes['x']} cells of {CELL / 1e3:g} km, {CRS}")
-    print(f"max flux: {float(flux.max()):.0f} m2/yr at easting {float(ds.x[ix]) / 1e3:.0f} km, "
-          f"northing {float(ds.y[iy]) / 1e3:.0f} km")
-    print(f"max thickening rate: {float(ds['thickening_rate'].max()):.1f} mm/yr; "
-          f"max uplift rate: {float(ds['uplift_rate'].max()):.1f} mm/yr")
+    print(
+        f"max flux: {float(flux.max()):.0f} m2/yr at easting {float(ds.x[ix]) / 1e3:.0f} km, "
+        f"northing {float(ds.y[iy]) / 1e3:.0f} km"
+    )
+    print(
+        f"max thickening rate: {float(ds['thickening_rate'].max()):.1f} mm/yr; "
+        f"max uplift rate: {float(ds['uplift_rate'].max()):.1f} mm/yr"
+    )
     print(f"total inflow (volume rate into thickening cells): {inflow:.3f} km3/yr")
-    print(f"net volume rate over the grid: {net:.2e} km3/yr; outflow through its edges: "
-          f"{outflow:.2e} km3/yr (conservation check: sum {net + outflow:.1e}, ~0)")
+    print(
+        f"net volume rate over the grid: {net:.2e} km3/yr; outflow through its edges: "
+        f"{outflow:.2e} km3/yr (conservation check: sum {net + outflow:.1e}, ~0)"
+    )
 
     profile = cell_velocity(ds, params, iy, ix)
     # The depth integral of u is the flux; Simpson's rule is exact for the parabolic profile.
     integral = simpson(profile["u"], x=profile["zeta"]) * 1e-3  # mm/yr * m -> m2/yr
-    print(f"velocity profile in that cell: peak {np.abs(profile['u']).max():.1f} mm/yr "
-          f"(fields: {float(ds['peak_speed'][iy, ix]):.1f}), depth integral {integral:.0f} m2/yr "
-          f"(fields: {profile['flux']:.0f})")
+    print(
+        f"velocity profile in that cell: peak {np.abs(profile['u']).max():.1f} mm/yr "
+        f"(fields: {float(ds['peak_speed'][iy, ix]):.1f}), depth integral {integral:.0f} m2/yr "
+        f"(fields: {profile['flux']:.0f})"
+    )
 
     args.out.mkdir(parents=True, exist_ok=True)
-    path = draw(ds, topography, profile, (int(iy), int(ix)), params,
-                args.out / "synthetic_plateau.png")
+    path = draw(
+        ds, topography, profile, (int(iy), int(ix)), params, args.out / "synthetic_plateau.png"
+    )
     print(f"figure: {path}")
     return 0
 

@@ -1,0 +1,1 @@
+"""crustflow.analyses.ensemble."""

@@ -1,0 +1,289 @@
+"""The ensemble engine: the grids read strip by strip with halo rows, the input checks, the loops
+over strips and members of the fast path and of the fallback, and the volume budgets of every
+member.
+
+Part of :mod:`crustflow.analyses.ensemble.run`; :func:`crustflow.analyses.ensemble.run.run_ensemble` drives it.
+The base maps
+and per-member scalars of the fast path are in :mod:`crustflow.analyses.ensemble.fast`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from crustflow.analyses.ensemble import report
+from crustflow.analyses.ensemble.fast import _ON_VALID, _block_basis, _Chunk, _Scalars
+from crustflow.engine.fields import crust_thickness_of, fields_si
+from crustflow.errors import CrustflowInputError
+from crustflow.geometry.grid import divergence, grid_geometry
+
+# ----------------------------------------------------------------------------------------------
+# reading strips
+
+
+class _Strip:
+    def __init__(self, r0, r1, a, arrays, geom, cell) -> None:
+        self.r0, self.r1, self.arrays, self.geom, self.cell = r0, r1, arrays, geom, cell
+        self.crop = slice(r0 - a, r1 - a)
+        self.H = arrays["topography"]
+
+    def thickness(self, parameters) -> np.ndarray:
+        return crust_thickness_of(
+            self.H,
+            parameters,
+            crust_thickness=self.arrays.get("crust_thickness"),
+            moho_depth=self.arrays.get("moho_depth"),
+        )
+
+
+class _Grid:
+    """The scenario's grids, read strip by strip with halo rows (as crustflow.engine.strips does)."""
+
+    def __init__(self, scenario) -> None:
+        from crustflow.io.grids import open_sources
+
+        self.scenario = scenario
+        self.sources = open_sources(scenario)
+        topo = self.sources["topography"]
+        self.x, self.y = topo.coords()
+        self.crs, self.transform = topo.crs, topo.transform
+        self.height, self.width = topo.height, topo.width
+        self.airy = scenario.crust_thickness is None and scenario.moho_depth is None
+        self.cell_grids = {}
+        for setup in (getattr(scenario, "channel", None), getattr(scenario, "load", None)):
+            self.cell_grids.update(getattr(setup, "grids", None) or {})
+
+    def strips(self, rows: int):
+        from crustflow.engine.strips import HALO_ROWS
+
+        t = self.transform
+        for r0 in range(0, self.height, rows):
+            r1 = min(self.height, r0 + rows)
+            a, b = max(0, r0 - HALO_ROWS), min(self.height, r1 + HALO_ROWS)
+            arrays = {key: src.read(a, b) for key, src in self.sources.items()}
+            cell = {k: g.to_si(arrays[k]) for k, g in self.cell_grids.items()}
+            geom = grid_geometry(self.x, self.y[a:b], self.crs, spacing=(t.a, t.e))
+            yield _Strip(r0, r1, a, arrays, geom, cell)
+
+    def close(self) -> None:
+        from crustflow.io.grids import close_sources
+
+        close_sources(self.sources)
+
+
+def _member_fields(strip: _Strip, parameters, scenario, wanted) -> dict[str, np.ndarray]:
+    """fields_si of one member on one strip, cropped to the strip's own rows (the fallback).
+
+    The strip is checked as :mod:`crustflow.engine.strips` checks it: a channel not thinner than the
+    crust, and roof layers reaching below the channel top, are errors.
+    """
+    T = strip.thickness(parameters)
+    h = strip.cell.get("channel_thickness", parameters.channel_thickness)
+    if h is not None:  # None: the channel is placed by depths
+        with np.errstate(invalid="ignore"):
+            bad = (np.isfinite(T) & np.isfinite(strip.H) & (T <= h))[strip.crop]
+        if bad.any():
+            raise CrustflowInputError(
+                f"the channel is not thinner than the crust in {int(bad.sum())} cells for an "
+                "ensemble member; narrow channel.thickness (or the densities) in [ensemble.vary]"
+            )
+    kw: dict = {"cell": strip.cell}
+    for key, attr in (("setup", "channel"), ("load_setup", "load")):
+        if getattr(scenario, attr, None) is not None:
+            kw[key] = getattr(scenario, attr)
+    diagnostics: dict = {}
+    if "load_setup" in kw:
+        kw["diagnostics"] = diagnostics
+    si = fields_si(strip.H, T, strip.geom, parameters, wanted=set(wanted), **kw)
+    roof_bad = diagnostics.get("roof_bad")
+    if roof_bad is not None and roof_bad[strip.crop].any():
+        from crustflow.scenario.load import ColumnCheck
+
+        check = ColumnCheck()
+        check.update(roof_bad[strip.crop], 0)
+        check.finish()
+    return {n: si[n][strip.crop] for n in wanted}
+
+
+def _scan(grid: _Grid, rows: int, bar) -> dict:
+    """First pass: the input checks of a run and the extremes the thickness check needs."""
+    from crustflow.io.grids import GridChecks
+
+    checks = GridChecks(grid.sources)
+    cells = None
+    if grid.cell_grids:
+        from crustflow.scenario.channel import CellInputCheck
+
+        cells = CellInputCheck()
+    low = {"H": np.inf, "T": np.inf}
+    p = grid.scenario.parameters
+    for strip in grid.strips(rows):
+        crop = {k: v[strip.crop] for k, v in strip.arrays.items()}
+        checks.update(crop)
+        if cells is not None:
+            cells.update({k: v[strip.crop] for k, v in strip.cell.items()})
+        H = crop["topography"]
+        ok = np.isfinite(H)
+        if ok.any():
+            low["H"] = min(low["H"], float(H[ok].min()))
+        if not grid.airy:
+            T = strip.thickness(p)[strip.crop]
+            ok &= np.isfinite(T)
+            if ok.any():
+                low["T"] = min(low["T"], float(T[ok].min()))
+        bar.update(strip.r1 - strip.r0)
+    checks.finish()
+    if cells is not None:
+        cells.finish()
+    return low
+
+
+def _check_thickness(members, low: dict, airy: bool, varied: bool) -> None:
+    """Every member's channel must be thinner than its thinnest crust (as crustflow.solve checks)."""
+    s = _Scalars.of(members, airy)
+    if airy:
+        thinnest = s.t0 + (s.a if low["H"] >= 0 else s.b) * low["H"]
+    else:
+        thinnest = np.full_like(s.h, low["T"])
+    bad = np.flatnonzero(s.h >= thinnest)
+    if bad.size:
+        i = int(bad[0])
+        fix = (
+            'set max in [ensemble.vary]."channel.thickness" below the thinnest crust'
+            if varied
+            else "give a thinner channel or narrow the varied densities and reference thickness in "
+            "[ensemble.vary]"
+        )
+        raise CrustflowInputError(
+            f"channel.thickness is not less than the thinnest crust in {bad.size} of "
+            f"{len(members)} ensemble members (member {i}: channel {s.h[i] / 1e3:.4g} km, crust "
+            f"{thinnest[i] / 1e3:.4g} km); {fix}"
+        )
+
+
+# ----------------------------------------------------------------------------------------------
+# the member loops of the fast path and the fallback
+
+
+def _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, bar) -> None:
+    scalars = _Scalars.of(members, grid.airy)
+    for strip in grid.strips(rows):
+        T = None if grid.airy else strip.thickness(grid.scenario.parameters)
+        basis = _block_basis(strip.H, T, strip.geom)
+        flat = {k: v[strip.crop].ravel() for k, v in basis.items()}
+        cells = np.flatnonzero(flat["valid"])
+        reducer.start(flat["valid"].size)
+        for c0 in range(0, cells.size, chunk):
+            idx = cells[c0 : c0 + chunk]
+            part = _Chunk({k: v[idx] for k, v in flat.items()}, scalars, buffers)
+            for name in needed:
+                rows_ok = part.columns["valid" if name in _ON_VALID else "live"]
+                reducer.add(name, part.values(name), idx, rows_ok)
+            bar.update(idx.size)
+        bar.update(flat["valid"].size - cells.size)
+        writer.write(strip.r0, strip.r1, reducer.maps)
+
+
+def _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> None:
+    M = len(members)
+    for strip in grid.strips(rows):
+        n = (strip.r1 - strip.r0) * grid.width
+        stacks = {name: np.empty((M, n)) for name in needed}
+        for m, p in enumerate(members):
+            si = _member_fields(strip, p, grid.scenario, needed)
+            for name in needed:
+                stacks[name][m] = si[name].ravel()
+            bar.update(1)
+        reducer.start(n)
+        cells = np.flatnonzero(np.isfinite(strip.H[strip.crop]).ravel())
+        for c0 in range(0, cells.size, chunk):
+            idx = cells[c0 : c0 + chunk]
+            for name in needed:
+                vals = np.ascontiguousarray(stacks[name][:, idx].T)
+                reducer.add(name, vals, idx, np.isfinite(vals).all(axis=1))
+        writer.write(strip.r0, strip.r1, reducer.maps)
+
+
+# ----------------------------------------------------------------------------------------------
+# budgets
+
+
+def _read_features(scenario, crs) -> dict:
+    from crustflow.analyses.budgets import read_features
+
+    out = {}
+    for kind in ("sections", "regions"):
+        path = getattr(scenario, kind, None)
+        if path is not None:
+            out[kind] = read_features(path, kind, crs)
+    return out
+
+
+def _member_budgets(grid, members, features, fast: bool, rows: int, memory: int, bar):
+    """Volume flux of every feature for every member (DataFrame, m^3/yr, one column per feature)."""
+    import pandas as pd
+
+    wanted = ("flux_east", "flux_north", "thickening_rate")
+    if fast:
+        s = _Scalars.of(members, grid.airy)
+        k = -(s.h**3) / (12.0 * s.eta)
+        coefs = [0.5 * s.h * s.ue, 0.5 * s.h * s.un] + [k * gm for gm in s.gamma]
+        jobs = [("one", None), (None, "one")] + [(f"{v}_east", f"{v}_north") for v in s.vectors]
+
+        def fields(strip, j, cache):
+            if "basis" not in cache:
+                T = None if grid.airy else strip.thickness(grid.scenario.parameters)
+                cache["basis"] = _block_basis(strip.H, T, strip.geom)
+            base = cache["basis"]
+            live = base["live"]
+            east, north = jobs[j]
+            qe = np.where(live, base[east] if east else 0.0, np.nan)
+            qn = np.where(live, base[north] if north else 0.0, np.nan)
+            thick = -divergence(qe, qn, strip.geom)
+            return [v[strip.crop] for v in (qe, qn, thick)]
+
+        n_jobs = len(jobs)
+    else:
+
+        def fields(strip, j, cache):
+            si = _member_fields(strip, members[j], grid.scenario, wanted)
+            return [si[n] for n in wanted]
+
+        n_jobs = len(members)
+    tables = _whole_grid_budgets(grid, n_jobs, fields, features, rows, memory, bar)
+    labels = report.budget_labels(tables[0])
+    totals = np.array([t["volume_flux_m3_per_yr"].to_numpy() for t in tables])
+    if fast:
+        totals = np.column_stack(coefs) @ totals
+    frame = pd.DataFrame(totals, columns=labels)
+    frame.attrs.update(names=list(tables[0]["name"]), kinds=list(tables[0]["kind"]))
+    return frame
+
+
+def _whole_grid_budgets(grid, n_jobs, fields, features, rows, memory, bar):
+    """budget_table of each job's whole-grid flux, as many jobs per pass over the grid as fit."""
+    import rioxarray  # noqa: F401  (registers the .rio accessor)
+    import xarray as xr
+
+    from crustflow.analyses.budgets import budget_table
+    from crustflow.engine.fields import to_practical
+
+    names = ("flux_east", "flux_north", "thickening_rate")
+    per_pass = max(1, memory // (8 * len(names) * grid.height * grid.width))
+    tables = []
+    for j0 in range(0, n_jobs, per_pass):
+        jobs = range(j0, min(n_jobs, j0 + per_pass))
+        store = np.empty((len(jobs), len(names), grid.height, grid.width))
+        for strip in grid.strips(rows):
+            cache: dict = {}
+            for i, j in enumerate(jobs):
+                for k, values in enumerate(fields(strip, j, cache)):
+                    store[i, k, strip.r0 : strip.r1] = values
+        for i in range(len(jobs)):
+            ds = xr.Dataset(
+                {n: (("y", "x"), to_practical(n, store[i, k])) for k, n in enumerate(names)},
+                coords={"y": grid.y, "x": grid.x},
+            ).rio.write_crs(grid.crs)
+            tables.append(budget_table(ds, features.get("sections"), features.get("regions")))
+            bar.update(1)
+    return tables

@@ -1,0 +1,299 @@
+"""Ensembles: how sure are the maps? Sample uncertain scalar parameters and map the spread of the results.
+
+An ensemble varies scalar scenario values (viscosity, channel thickness, densities, wall velocity,
+gravity, the Airy reference thickness) according to stated probability distributions, runs the model
+for every sampled member and reduces the members cell by cell to percentiles, mean, standard deviation
+and exceedance probabilities, and feature by feature to distributions of the volume budgets.
+
+Two engines give the same numbers (``tests/test_ensemble.py``):
+
+* **Fast path.** For a Newtonian channel of uniform parameters every output is a combination of a few
+  base maps with per-member scalars (see :func:`fast_fields`), so each member costs a few multiply-adds
+  per cell. Cells are processed in chunks of a strip of rows, never holding members x cells for the whole
+  grid; the strips are read with halo rows as :mod:`crustflow.engine.strips` does.
+* **Fallback.** Anything else (parameter grids, other rheologies) loops over the members and calls
+  :func:`crustflow.engine.fields.fields_si` on each strip. It is slower, by about the ratio of a full model
+  run to a few multiply-adds per cell.
+
+Conventions
+-----------
+- SI inside; practical units at the edges: the units of :data:`crustflow.engine.fields.VARIABLES` in files,
+  and the units named in the column headers of the sampled values.
+- Percentiles: numpy's ``"linear"`` method (definition 7 of Hyndman & Fan 1996), over the members of a
+  cell. The order statistics are taken on the member values rounded to float32, the precision of the
+  output files; rounding is monotone, so they are the float64 order statistics rounded, and the linear
+  interpolation between them is done in float64.
+- Standard deviation: the sample standard deviation over members (``ddof = 1``).
+- Exceedance: the share of members whose value is strictly greater than the threshold (0 to 1).
+- A cell that is nodata for a variable has no statistics (NaN).
+- Members are numbered from 0, in sampling order.
+
+References
+----------
+.. [1] McKay, M. D., Beckman, R. J. & Conover, W. J. (1979). A comparison of three methods for
+   selecting values of input variables in the analysis of output from a computer code.
+   Technometrics 21(2), 239-245.
+.. [2] Hyndman, R. J. & Fan, Y. (1996). Sample quantiles in statistical packages. The American
+   Statistician 50(4), 361-365.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+from crustflow.analyses.ensemble import report
+from crustflow.analyses.ensemble.engine import (
+    _check_thickness,
+    _fallback_maps,
+    _fast_maps,
+    _Grid,
+    _member_budgets,
+    _read_features,
+    _scan,
+)
+from crustflow.analyses.ensemble.fast import FAST_VARIABLES as FAST_VARIABLES
+from crustflow.analyses.ensemble.fast import LINEAR as LINEAR
+from crustflow.analyses.ensemble.fast import (
+    SOLUTION,
+    _Buffers,
+    fast_fields,
+    fast_path_obstacle,
+)
+from crustflow.errors import CrustflowInputError
+from crustflow.scenario.ensemble import CIRCULAR as CIRCULAR
+from crustflow.scenario.ensemble import DISTRIBUTIONS, SAMPLING, parse_ensemble
+from crustflow.scenario.ensemble import WHOLE_GRID as WHOLE_GRID
+from crustflow.scenario.ensemble_spec import DEFAULT_PERCENTILES as DEFAULT_PERCENTILES
+from crustflow.scenario.ensemble_spec import DEFAULT_VARIABLES as DEFAULT_VARIABLES
+from crustflow.scenario.ensemble_spec import U_HIGH as U_HIGH
+from crustflow.scenario.ensemble_spec import U_LOW as U_LOW
+from crustflow.scenario.ensemble_spec import (
+    VARIABLE_KEYS,
+    Distribution,
+    EnsembleSpec,
+    VectorDistribution,
+    sample_members,
+)
+
+__all__ = [
+    "Distribution",
+    "VectorDistribution",
+    "EnsembleSpec",
+    "parse_ensemble",
+    "sample_members",
+    "run_ensemble",
+    "fast_fields",
+    "fast_path_obstacle",
+    "SAMPLING",
+    "DISTRIBUTIONS",
+    "VARIABLE_KEYS",
+    "MEMORY_BYTES",
+]
+
+# This module runs an ensemble; the parts are in ensemble_spec (varied keys, distributions, sampling),
+# ensemble_parse (the [ensemble] table), ensemble_fast (base maps and member scalars),
+# ensemble_engine (strips, member loops, budgets), ensemble_stats and ensemble_report (statistics,
+# files, figures). The names imported above as ``X as X`` were defined here before the split and
+# stay importable from here.
+
+#: Percentiles the figure needs (median and the 5-95 % spread), computed in any case.
+FIGURE_PERCENTILES = (5.0, 50.0, 95.0)
+
+#: Working memory for the member-by-cell arrays, bytes. Project choice: 1 GiB keeps a 1000-member
+#: run of a 1000 x 1000 grid far below 4 GB with chunks large enough to keep numpy busy.
+MEMORY_BYTES = 1 << 30
+
+#: Member-by-cell float64 arrays alive at once on the fast path (named buffers, the float32 sort
+#: copy, a comparison mask), and with the full one-cell solution (peak speed, drag, backflow). Peak
+#: traced by tracemalloc over one chunk of 9,000 cells and 200 members: 5.8 and 36 arrays; rounded up.
+FAST_ARRAYS, FULL_ARRAYS = 8, 40
+
+
+# ----------------------------------------------------------------------------------------------
+# the run
+
+
+def run_ensemble(
+    scenario,
+    spec: EnsembleSpec,
+    folder,
+    *,
+    progress: bool = False,
+    strip_rows: int | None = None,
+    fast: bool | None = None,
+    memory_bytes: int = MEMORY_BYTES,
+) -> dict:
+    """Run an ensemble of a scenario and write its maps, tables and figures into ``folder``.
+
+    Parameters
+    ----------
+    scenario : Scenario
+    spec : EnsembleSpec
+        From :func:`parse_ensemble`.
+    folder : path
+        An existing (temporary) folder; see :func:`crustflow.analyses.ensemble.report.write_tables` and
+        :class:`crustflow.analyses.ensemble.report.MapWriter` for the files. ``[output] formats`` of the
+        scenario chooses NetCDF, GeoTIFF and figures; the CSV tables are always written.
+    progress : bool
+        Progress bars on stderr (cells done and time left; members done on the fallback).
+    strip_rows : int, optional
+        Rows per strip (default: :func:`crustflow.engine.strips.strip_rows_for` on the fast path, from
+        ``memory_bytes`` on the fallback).
+    fast : bool, optional
+        Force the fast path (True; an error where it does not apply) or the fallback (False);
+        default: the fast path wherever :func:`fast_path_obstacle` finds nothing against it.
+    memory_bytes : int
+        Budget for the member-by-cell work arrays, bytes (default :data:`MEMORY_BYTES`).
+
+    Returns
+    -------
+    dict
+        ``written`` (file names), ``fast_path`` (bool), ``fast_path_obstacle`` (str or None),
+        ``samples`` (DataFrame of :func:`sample_members`), ``member_budgets`` (DataFrame of the
+        volume flux of each feature per member, m^3/yr, or None), ``budget_statistics``
+        (DataFrame or None), ``timings`` (seconds per stage), ``shape``, ``strip_rows``,
+        ``chunk_cells``, ``provenance`` (grid alignment), ``spec`` (:meth:`EnsembleSpec.describe`),
+        ``members``, ``percentile_method``, and ``manifest``: the JSON-ready entries (no
+        DataFrames; budget statistics as records) for a run manifest.
+
+    Raises
+    ------
+    CrustflowInputError
+        Every check of a run (grids, features), a member whose channel is not thinner than its
+        crust, and ``fast=True`` where the fast path does not apply.
+
+    Notes
+    -----
+    Fast path: a first pass checks the grids; then each strip of rows is read with two halo rows,
+    its base maps are computed (:func:`fast_fields`), its valid cells are cut into chunks of
+    ``memory_bytes / (8 members FAST_ARRAYS)`` cells, and each chunk's member values are formed by
+    one matrix product per variable and reduced at once
+    (:class:`crustflow.analyses.ensemble.report.Reducer`). Budgets are linear in
+    the flux: the budgets of the two or three base flux fields and of the unit wall fields
+    (:func:`crustflow.analyses.budgets.budget_table`) combine with the member scalars.
+    Fallback: strips of ``memory_bytes / (8 members (variables + 2) width)`` rows; each member runs
+    :func:`crustflow.engine.fields.fields_si` on each strip; budgets come from ``budget_table`` on each
+    member's whole-grid flux.
+    """
+    from tqdm import tqdm
+
+    from crustflow.io.grids import provenance as grid_provenance
+
+    folder = Path(folder)
+    timings: dict[str, float] = {}
+    clock = [time.perf_counter()]
+
+    def lap(stage: str) -> None:
+        now = time.perf_counter()
+        timings[stage] = timings.get(stage, 0.0) + now - clock[0]
+        clock[0] = now
+
+    def bar(total, unit, desc):
+        return tqdm(
+            total=total,
+            unit=unit,
+            desc=desc,
+            leave=False,
+            file=sys.stderr,
+            disable=not progress,
+            dynamic_ncols=True,
+            unit_scale=True,
+        )
+
+    load_model = getattr(scenario, "load", None)
+    if getattr(load_model, "filtered", False):
+        raise CrustflowInputError(
+            "ensembles do not support [load] smoothing or elastic_thickness yet (the filtered load "
+            "is a whole-grid computation for every member); remove them from the scenario"
+        )
+    members, samples = sample_members(spec, scenario.parameters)
+    obstacle = fast_path_obstacle(scenario, spec)
+    if fast is None:
+        fast = obstacle is None
+    elif fast and obstacle:
+        raise CrustflowInputError(f"the fast path does not apply: {obstacle}; leave fast unset")
+    lap("sample members")
+    grid = _Grid(scenario)
+    try:
+        from crustflow.engine.strips import strip_rows_for
+
+        M = spec.members
+        names = list(spec.variables)
+        needed = (
+            list(dict.fromkeys(names + [spec.exceedance_variable]))
+            if spec.exceedance_variable
+            else names
+        )
+        full = bool(set(needed) & set(SOLUTION))
+        rows = strip_rows or strip_rows_for(grid.width)
+        with bar(grid.height, " rows", "checking grids") as b:
+            low = _scan(grid, rows, b)
+        features = _read_features(scenario, grid.crs)
+        if not grid.cell_grids:
+            _check_thickness(members, low, grid.airy, "channel.thickness" in spec.vary)
+        lap("check grids")
+        percentiles = tuple(sorted(set(spec.percentiles) | set(FIGURE_PERCENTILES)))
+        buffers = _Buffers(M)
+        reducer = report.Reducer(
+            names, spec.exceedance_variable, spec.thresholds, percentiles, M, buffers.get
+        )
+        if fast:
+            chunk = max(1, memory_bytes // (8 * M * (FULL_ARRAYS if full else FAST_ARRAYS)))
+        else:
+            rows = strip_rows or max(1, memory_bytes // (8 * M * (len(needed) + 2) * grid.width))
+            chunk = max(1, memory_bytes // (8 * M * 2 * (len(needed) + 2)))
+        writer = report.MapWriter(folder, grid, scenario, spec, percentiles, rows)
+        try:
+            if fast:
+                with bar(grid.height * grid.width, " cells", f"ensemble ({M} members)") as b:
+                    _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, b)
+            else:
+                with bar(
+                    M * -(-grid.height // rows),
+                    " member-strips",
+                    f"ensemble ({M} members, fallback)",
+                ) as b:
+                    _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, b)
+            written = writer.close()
+        except BaseException:
+            writer.abort()
+            raise
+        lap("maps")
+        member_budgets = None
+        if features:
+            with bar(None, " fields", "budgets") as b:
+                member_budgets = _member_budgets(
+                    grid, members, features, fast, rows, memory_bytes, b
+                )
+            lap("budgets")
+        provenance = grid_provenance(grid.sources)
+    finally:
+        grid.close()
+    written += report.write_tables(folder, samples, member_budgets, spec)
+    stats = report.budget_statistics(member_budgets, spec.percentiles, M)
+    if "figure" in scenario.formats:
+        written += writer.figures(folder, stats, member_budgets)
+    lap("tables and figures")
+    summary = {
+        "fast_path": bool(fast),
+        "fast_path_obstacle": obstacle,
+        "members": M,
+        "spec": spec.describe(),
+        "percentile_method": report.PERCENTILE_METHOD,
+        "timings": {k: round(v, 4) for k, v in timings.items()},
+        "shape": [grid.height, grid.width],
+        "strip_rows": rows,
+        "chunk_cells": chunk,
+        "provenance": provenance,
+    }
+    budget_records = None if member_budgets is None else stats.to_dict(orient="records")
+    return dict(
+        summary,
+        written=written,
+        samples=samples,
+        member_budgets=member_budgets,
+        budget_statistics=stats if member_budgets is not None else None,
+        manifest=dict(summary, outputs=list(written), budget_statistics=budget_records),
+    )

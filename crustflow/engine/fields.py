@@ -1,0 +1,483 @@
+"""Output variables and the physics of one block of rows, free of xarray and files.
+
+:data:`VARIABLES` is the single table of output names, long names and practical units. :func:`fields_si`
+assembles load, channel and divergence for a whole grid or a strip of rows; both
+:func:`crustflow.compute_fields` (the API, whole grids) and :mod:`crustflow.engine.strips` (the command,
+strips) call it, so they agree bit for bit.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+
+import numpy as np
+
+from crustflow.constants import SECONDS_PER_YEAR
+from crustflow.errors import CrustflowInputError
+from crustflow.geometry.grid import azimuth, divergence
+from crustflow.physics import isostasy as load
+from crustflow.physics.channel import ChannelSolution
+from crustflow.scenario.channel import ChannelSetup, solve_cells
+from crustflow.scenario.document import ModelParameters
+
+__all__ = [
+    "Variable",
+    "VARIABLES",
+    "CAUTION",
+    "fields_si",
+    "column_si",
+    "to_practical",
+    "variable_attrs",
+    "crust_thickness_of",
+    "ThinCrustCheck",
+]
+
+
+@dataclass(frozen=True)
+class Variable:
+    """An output variable: CF metadata and the factor from SI to its practical unit."""
+
+    long_name: str
+    units: str  #: UDUNITS form, as written to files
+    factor: float  #: value in ``units`` = value in SI x factor
+    flag: bool = False  #: 0/1 flag variable
+    flag_meanings: str = "no_backflow backflow"
+    standard_name: str | None = None
+
+
+_MM_YR = 1e3 * SECONDS_PER_YEAR
+_M2_YR = SECONDS_PER_YEAR
+
+#: Every variable crustflow writes, in output order. Rates use the Julian year (365.25 d).
+VARIABLES: dict[str, Variable] = {
+    "crust_thickness": Variable("crustal thickness, surface to Moho", "km", 1e-3),
+    "channel_thickness": Variable("channel thickness", "km", 1e-3),
+    "channel_top_depth": Variable("depth of the channel top below sea level", "km", 1e-3),
+    "overburden_pressure": Variable("lithostatic pressure at the channel top", "MPa", 1e-6),
+    "drive_east": Variable(
+        "horizontal pressure gradient in the channel, east component", "Pa m-1", 1.0
+    ),
+    "drive_north": Variable(
+        "horizontal pressure gradient in the channel, north component", "Pa m-1", 1.0
+    ),
+    "flux_east": Variable("channel volume flux per unit width, east component", "m2 yr-1", _M2_YR),
+    "flux_north": Variable(
+        "channel volume flux per unit width, north component", "m2 yr-1", _M2_YR
+    ),
+    "flux_magnitude": Variable("channel volume flux per unit width, magnitude", "m2 yr-1", _M2_YR),
+    "flux_azimuth": Variable("direction of channel flux, clockwise from true north", "degree", 1.0),
+    "mean_velocity_east": Variable("channel mean velocity, east component", "mm yr-1", _MM_YR),
+    "mean_velocity_north": Variable("channel mean velocity, north component", "mm yr-1", _MM_YR),
+    "peak_speed": Variable("largest speed within the channel", "mm yr-1", _MM_YR),
+    "peak_speed_height": Variable("height of the largest speed above the channel base", "km", 1e-3),
+    "upper_wall_drag_east": Variable(
+        "shear traction of the channel on its upper wall, east", "MPa", 1e-6
+    ),
+    "upper_wall_drag_north": Variable(
+        "shear traction of the channel on its upper wall, north", "MPa", 1e-6
+    ),
+    "lower_wall_drag_east": Variable(
+        "shear traction of the channel on its lower wall, east", "MPa", 1e-6
+    ),
+    "lower_wall_drag_north": Variable(
+        "shear traction of the channel on its lower wall, north", "MPa", 1e-6
+    ),
+    "backflow": Variable(
+        "flow reversal: some height in the channel moves against the net flux", "1", 1.0, flag=True
+    ),
+    "wall_driven_share": Variable(
+        "share of the flux carried by wall motion, |q_wall| / (|q_wall| + |q_pressure|)", "1", 1.0
+    ),
+    "thickening_rate": Variable("crustal thickening rate, -div(q)", "mm yr-1", _MM_YR),
+    "uplift_rate": Variable("isostatic surface uplift rate from thickening", "mm yr-1", _MM_YR),
+    "effective_viscosity": Variable(
+        "depth-averaged effective viscosity of the channel, h / integral of 1/eta", "Pa s", 1.0
+    ),
+    "thin_channel_warning": Variable(
+        "load varies on wavelengths shorter than 3 channel thicknesses (thin-channel limit)",
+        "1",
+        1.0,
+        flag=True,
+        flag_meanings="valid_thin_channel short_wavelength_load",
+    ),
+    "solver_converged": Variable(
+        "per-cell solver converged (power-law and flow-law channels; 1 for closed forms)",
+        "1",
+        1.0,
+        flag=True,
+        flag_meanings="not_converged converged",
+    ),
+}
+
+
+#: One-line caution carried by every output.
+CAUTION = (
+    "Research estimate of a simplified model (thin channel, rigid walls, lithostatic load, "
+    "idealised rheology); no basis for hazard or engineering decisions without local, licensed "
+    "review."
+)
+
+
+#: Variables that need the full one-cell solution, not just the flux.
+CELL_EXTRAS = {
+    f.name for f in dataclasses.fields(ChannelSolution) if not f.name.startswith("flux_")
+} | {"effective_viscosity", "solver_converged"}
+
+
+def crust_thickness_of(
+    elevation, parameters: ModelParameters, *, crust_thickness=None, moho_depth=None
+):
+    """Crustal thickness T (m) from whichever input the run has: T itself, Moho depth, or Airy."""
+    p = parameters
+    if crust_thickness is not None:
+        return crust_thickness
+    if moho_depth is not None:
+        return load.crust_thickness_from_moho(elevation, moho_depth)
+    if p.reference_thickness is None:
+        raise CrustflowInputError(
+            "no crust_thickness or moho_depth grid and no "
+            "reference_thickness for Airy isostasy; give one of them"
+        )
+    return load.crust_thickness_airy(
+        elevation, p.reference_thickness, p.rho_crust, p.rho_mantle, p.rho_water
+    )
+
+
+class ThinCrustCheck:
+    """Counts cells where the channel is not thinner than the crust; :meth:`finish` raises."""
+
+    def __init__(self, channel_thickness: float | None) -> None:
+        self.h, self.cells, self.thinnest = channel_thickness, 0, np.inf
+
+    def update(self, crust_thickness: np.ndarray, channel_thickness=None) -> None:
+        """Add a strip of crustal thickness values (and channel thickness, if a grid), m."""
+        h = self.h if channel_thickness is None else channel_thickness
+        if h is None:  # channel placed by depths: cells are flagged, not refused
+            return
+        with np.errstate(invalid="ignore"):
+            bad = np.isfinite(crust_thickness) & (crust_thickness <= h)
+        self.cells += int(bad.sum())
+        finite = crust_thickness[np.isfinite(crust_thickness)]
+        if finite.size:
+            self.thinnest = min(self.thinnest, float(finite.min()))
+
+    def finish(self) -> None:
+        """Raise :class:`CrustflowInputError` if any cell failed."""
+        if self.cells:
+            what = f"({self.h / 1e3:g} km) " if self.h is not None else "(grid) "
+            raise CrustflowInputError(
+                f"channel.thickness {what}is not less than the crustal thickness in "
+                f"{self.cells} cells (thinnest crust {self.thinnest / 1e3:.3g} km); give a thinner "
+                "channel or check the thickness grid"
+            )
+
+
+def column_si(
+    elevation,
+    crust_thickness,
+    parameters: ModelParameters,
+    *,
+    load_setup=None,
+    cell: dict | None = None,
+) -> dict:
+    """The density column of a block of cells: channel placement and load at the channel top (SI).
+
+    Returns
+    -------
+    dict
+        ``H``, ``T`` (m, NaN where invalid), ``z_top`` (m below sea level), ``h`` (m),
+        ``p_top`` (Pa), ``valid`` (cells with a usable column and channel), ``roof_bad`` (roof
+        reaches below the channel top, or None) and ``excluded`` (placed channel has no thickness
+        or leaves the crust, or None).
+
+    Notes
+    -----
+    Uniform crust under water: ``P_top = g (rho_w max(0, -H) + rho_c (z_top + H))``; with roof
+    layers or a crust density grid, g times the integral of density from the sea surface down to
+    ``z_top`` (crustflow.physics.column.roof_overburden).
+    """
+    from crustflow.physics.column import channel_geometry, roof_overburden
+
+    p = parameters
+    cell = cell or {}
+    ls = load_setup
+    valid = np.isfinite(elevation) & np.isfinite(crust_thickness)
+    excluded = roof_bad = None
+    if ls is None or ls.placement == "crust-base":
+        h = cell.get("channel_thickness", p.channel_thickness)
+        if np.ndim(h):
+            valid = valid & np.isfinite(h)
+        H = np.where(valid, elevation, np.nan)
+        T = np.where(valid, crust_thickness, np.nan)
+        z_top = load.channel_top_depth(H, T, h)
+    else:
+        top = cell.get("top_depth", ls.top_depth)
+        base = cell.get("base_depth", ls.base_depth)
+        geo = channel_geometry(
+            elevation,
+            crust_thickness,
+            placement=ls.placement,
+            top_depth=top,
+            base_depth=base if ls.placement == "depths" else None,
+        )
+        data = valid & np.isfinite(geo.thickness)
+        excluded = data & ~geo.valid
+        valid = data & geo.valid
+        H = np.where(valid, elevation, np.nan)
+        T = np.where(valid, crust_thickness, np.nan)
+        z_top, h = np.where(valid, geo.top_depth, np.nan), np.where(valid, geo.thickness, np.nan)
+    if ls is not None and (ls.layered or ls.placement != "crust-base"):
+        rho_c = cell.get("rho_crust", p.rho_crust)
+        layers = [(t, d) for _, t, d in ls.layers_for(cell)]
+        col = roof_overburden(
+            H,
+            T,
+            z_top,
+            layers=layers,
+            rho_crust=rho_c,
+            rho_water=p.rho_water,
+            gravity=p.gravity,
+            strict=False,
+        )
+        roof_bad = valid & ~col.valid
+        valid = valid & col.valid
+        p_top = np.where(valid, col.pressure, np.nan)
+    else:
+        p_top = load.overburden_pressure(
+            H, T, h, rho_crust=p.rho_crust, rho_water=p.rho_water, gravity=p.gravity
+        )
+    return {
+        "H": H,
+        "T": T,
+        "z_top": z_top,
+        "h": h,
+        "p_top": p_top,
+        "valid": valid,
+        "roof_bad": roof_bad,
+        "excluded": excluded,
+    }
+
+
+def whole_grid_load(
+    elevation,
+    crust_thickness,
+    geometry,
+    parameters: ModelParameters,
+    *,
+    load_setup=None,
+    cell: dict | None = None,
+    filtered: bool = True,
+    mask: bool = True,
+) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """Load at the channel top after the whole-grid filters, and the thin-channel warning flag.
+
+    Parameters
+    ----------
+    elevation, crust_thickness : ndarray
+        The whole grid, m.
+    geometry : crustflow.geometry.grid.GridGeometry
+    parameters : ModelParameters
+    load_setup : crustflow.scenario.load.LoadSetup, optional
+    cell : dict, optional
+        Parameter grids, SI.
+    filtered : bool
+        Apply the scenario's smoothing and elastic-crust filter.
+    mask : bool
+        Compute the thin-channel warning flag.
+
+    Returns
+    -------
+    p_top : ndarray or None
+        Filtered load, Pa (None when ``filtered`` is False or no filter is set).
+    warning : ndarray or None
+        1.0 where the driving potential varies on wavelengths shorter than 3 channel thicknesses
+        (crustflow.physics.column.short_wavelength_mask; McKenzie et al. 2000), 0.0 elsewhere.
+
+    Notes
+    -----
+    The filters act on the driving potential ``phi = P_top - rho_ch g z_top`` (``G = grad(phi)``;
+    ``rho_c g H`` for a uniform crust in Airy balance), and the filtered load is
+    ``phi_f + rho_ch g z_top``. Smoothing (a Gaussian of standard deviation ``sigma``) is applied
+    first, then the thin elastic crust: the load reaches the channel scaled at wavenumber k by
+    ``1 / (1 + D k^4 / (drho g))`` with ``D = E Te^3 / (12 (1 - nu^2))`` and, by default,
+    ``drho = rho_mantle - rho_crust`` (compensation at the Moho; Turcotte & Schubert 2002,
+    chapter 3). Both act on the whole grid.
+    """
+    from crustflow.physics.column import short_wavelength_mask
+    from crustflow.physics.flexure import flexural_filter, gaussian_smoothing
+
+    p = parameters
+    ls = load_setup
+    col = column_si(elevation, crust_thickness, p, load_setup=ls, cell=cell)
+    # The driving potential: the load at the channel top referred to sea level through channel
+    # material, phi = P_top - rho_ch g z_top, so that G = grad(phi) exactly. Filters act on phi:
+    # filtering P_top alone would break the cancellation of the two terms of G.
+    reference = p.rho_channel * p.gravity * col["z_top"]
+    load_p = col["p_top"] - reference
+    out_p = None
+    if filtered and ls is not None and ls.filtered:
+        if ls.smoothing:
+            load_p = gaussian_smoothing(load_p, geometry, sigma=ls.smoothing)
+        if ls.elastic_thickness:
+            contrast = ls.density_contrast or (p.rho_mantle - p.rho_crust)
+            load_p = flexural_filter(
+                load_p,
+                geometry,
+                elastic_thickness=ls.elastic_thickness,
+                density_contrast=contrast,
+                gravity=p.gravity,
+                youngs_modulus=ls.youngs_modulus,
+                poissons_ratio=ls.poissons_ratio,
+            )
+        out_p = np.where(col["valid"], load_p + reference, np.nan)
+    warning = None
+    if mask:
+        h = col["h"]
+        flag = short_wavelength_mask(
+            np.where(col["valid"], load_p, np.nan), geometry, np.nanmax(h) if np.ndim(h) else h
+        )
+        warning = np.where(col["valid"], flag.astype(float), np.nan)
+    return out_p, warning
+
+
+def fields_si(
+    elevation: np.ndarray,
+    crust_thickness: np.ndarray,
+    geometry,
+    parameters: ModelParameters,
+    *,
+    wanted=None,
+    setup=None,
+    cell: dict | None = None,
+    load_setup=None,
+    p_top_filtered: np.ndarray | None = None,
+    thin_channel: np.ndarray | None = None,
+    diagnostics: dict | None = None,
+) -> dict[str, np.ndarray]:
+    """Every output variable in SI units on one block of rows (numpy arrays).
+
+    Parameters
+    ----------
+    elevation, crust_thickness : ndarray
+        H and T, m, NaN for nodata, on ``geometry``'s cells (a whole grid, or a strip of rows with
+        two halo rows on each inner side).
+    geometry : crustflow.geometry.grid.GridGeometry
+    parameters : ModelParameters
+    wanted : set of str, optional
+        Variables to compute (default: all of :data:`VARIABLES`); others are left out.
+    setup : crustflow.scenario.channel.ChannelSetup, optional
+        Rheology (default: Newtonian with ``parameters.viscosity``).
+    cell : dict, optional
+        Parameter grids on the same cells, SI (``channel_thickness``, ``viscosity``,
+        ``temperature_top``, ``temperature_base``, ``surface_heat_flow``, roof and placement
+        grids); they replace the scalars.
+    load_setup : crustflow.scenario.load.LoadSetup, optional
+        Roof layers, density grids and channel placement (default: uniform crust, crust-base).
+    p_top_filtered : ndarray, optional
+        The load at the channel top after the whole-grid filters (smoothing, elastic crust), Pa;
+        replaces the local lithostatic value.
+    thin_channel : ndarray, optional
+        The thin-channel warning flag of these cells (computed over the whole grid).
+    diagnostics : dict, optional
+        Filled with ``roof_bad`` and ``excluded`` masks (cells whose roof reaches below the channel
+        top; cells excluded because the placed channel has no thickness or leaves the crust).
+
+    Returns
+    -------
+    dict
+        Name -> array in SI (m, Pa, Pa/m, m^2/s, m/s, degrees, 1), NaN where the cell depends on
+        nodata.
+    """
+    p = parameters
+    wanted = set(VARIABLES) if wanted is None else set(wanted)
+    cell = cell or {}
+    setup = setup if setup is not None else ChannelSetup()
+    col = column_si(elevation, crust_thickness, p, load_setup=load_setup, cell=cell)
+    H, T, z_top, h, valid = col["H"], col["T"], col["z_top"], col["h"], col["valid"]
+    p_top = col["p_top"] if p_top_filtered is None else np.where(valid, p_top_filtered, np.nan)
+    for key in ("viscosity", "temperature_top", "temperature_base", "surface_heat_flow"):
+        if key in cell:  # a cell without a parameter value depends on nodata
+            valid = valid & np.isfinite(cell[key])
+    g_east, g_north = load.driving_gradient(
+        p_top, z_top, geometry, rho_channel=p.rho_channel, gravity=p.gravity
+    )
+    live = valid & np.isfinite(g_east) & np.isfinite(g_north)
+    out = {
+        "crust_thickness": T,
+        "channel_top_depth": z_top,
+        "overburden_pressure": p_top,
+        "drive_east": g_east,
+        "drive_north": g_north,
+    }
+    if thin_channel is not None:
+        out["thin_channel_warning"] = thin_channel
+    live = live & valid
+    out.update(
+        solve_cells(
+            np.where(live, g_east, np.nan),
+            np.where(live, g_north, np.nan),
+            h,
+            setup,
+            viscosity=p.viscosity,
+            wall_east=p.wall_east,
+            wall_north=p.wall_north,
+            cell=cell,
+            elevation=H,
+            top_depth=z_top,
+            full=bool(wanted & CELL_EXTRAS),
+        )
+    )
+    out["channel_thickness"] = np.broadcast_to(np.asarray(h, dtype=float), np.shape(H))
+    if diagnostics is not None:
+        diagnostics.update(roof_bad=col["roof_bad"], excluded=col["excluded"])
+    q_east, q_north = out["flux_east"], out["flux_north"]
+    if wanted & {"thickening_rate", "uplift_rate"}:
+        thickening = -divergence(q_east, q_north, geometry)
+        out["thickening_rate"] = thickening
+        out["uplift_rate"] = load.uplift_rate(
+            thickening, H, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle, rho_water=p.rho_water
+        )
+    if "flux_magnitude" in wanted:
+        out["flux_magnitude"] = np.hypot(q_east, q_north)
+    if "flux_azimuth" in wanted:
+        out["flux_azimuth"] = azimuth(q_east, q_north, geometry)
+    result = {}
+    for name in VARIABLES:
+        if name not in wanted:
+            continue
+        if name not in out:  # asked for but not computed here (needs the whole grid)
+            result[name] = np.full(np.shape(H), np.nan)
+            continue
+        values = np.asarray(out[name])
+        if VARIABLES[name].flag:
+            values = values.astype("float64")
+        mask = (
+            valid
+            if name
+            in (
+                "crust_thickness",
+                "channel_top_depth",
+                "overburden_pressure",
+                "channel_thickness",
+                "thin_channel_warning",
+            )
+            else live
+        )
+        result[name] = np.where(mask, values, np.nan)
+    return result
+
+
+def to_practical(name: str, values: np.ndarray) -> np.ndarray:
+    """Convert a variable from SI to the practical unit of :data:`VARIABLES`."""
+    factor = VARIABLES[name].factor
+    return values if factor == 1.0 else values * factor
+
+
+def variable_attrs(name: str) -> dict:
+    """CF attributes of a variable (``long_name``, ``units``, flag attributes)."""
+    var = VARIABLES[name]
+    attrs = {"long_name": var.long_name, "units": var.units}
+    if var.flag:
+        attrs.update(flag_values=np.array([0, 1], dtype="int8"), flag_meanings=var.flag_meanings)
+    return attrs

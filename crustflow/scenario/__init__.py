@@ -1,0 +1,5 @@
+"""Scenario files: TOML to frozen, typed dataclasses in SI units. Opens no grids."""
+
+from crustflow.scenario.document import ModelParameters, Scenario, load_scenario, scenario_from_dict
+
+__all__ = ["ModelParameters", "Scenario", "load_scenario", "scenario_from_dict"]

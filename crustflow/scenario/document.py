@@ -1,0 +1,413 @@
+"""Scenario files (TOML): parse, validate and resolve to SI.
+
+A scenario names the input grids and the model parameters. Key names are a contract that scripts rely
+on; see the README for the reference. Every dimensional value is a string with units; relative paths are
+resolved against the scenario file's folder; unknown keys are errors that suggest the closest valid key.
+"""
+
+from __future__ import annotations
+
+import difflib
+import tomllib
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from crustflow import constants
+from crustflow.errors import CrustflowInputError
+from crustflow.scenario.channel import ChannelSetup, parse_channel
+from crustflow.scenario.load import LoadSetup, parse_load
+from crustflow.units import parse_quantity, parse_vector
+
+__all__ = ["ModelParameters", "Scenario", "load_scenario", "scenario_from_dict", "FORMATS"]
+
+#: Output formats an ``[output] formats`` list may name.
+FORMATS = ("netcdf", "geotiff", "figure")
+
+# Table -> key -> kind ("path", "text", a units kind of crustflow.units.DIMENSIONS, "vector:<kind>",
+# "list"). The nested tables are the scenario file's sections.
+_SCHEMA: dict[str, Any] = {
+    "title": "text",
+    "grids": {
+        "topography": "path",
+        "crust_thickness": "path",
+        "moho_depth": "path",
+        "reference_thickness": "length",
+        "crs": "text",
+    },
+    "densities": {
+        "crust": "density|grid",
+        "mantle": "density",
+        "water": "density",
+        "channel": "density",
+    },
+    "channel": {
+        "thickness": "length|grid",
+        "viscosity": "viscosity|grid",
+        "rheology": "text",
+        "stress_exponent": "number",
+        "prefactor": "text",
+        "placement": "text",
+        "top_depth": "length|grid",
+        "base_depth": "length|grid",
+        "flow_law": "table",  # checked by crustflow.scenario.channel
+        "temperature": "table",  # checked by crustflow.scenario.channel
+    },
+    "walls": {"upper_velocity": "vector:velocity"},
+    "constants": {"gravity": "acceleration"},
+    "output": {"variables": "list", "formats": "list"},
+    "budgets": {"sections": "path", "regions": "path"},
+    "roof": {"layers": "list"},  # checked by crustflow.scenario.load
+    "ensemble": "table",  # checked by crustflow.analyses.ensemble.run.parse_ensemble
+    "load": {
+        "smoothing": "length",
+        "elastic_thickness": "length",
+        "youngs_modulus": "pressure",
+        "poissons_ratio": "number",
+        "density_contrast": "density",
+    },
+}
+
+
+@dataclass(frozen=True)
+class ModelParameters:
+    """Scalar model parameters, all in SI units.
+
+    Attributes
+    ----------
+    channel_thickness : float or None
+        Channel thickness h, m (None: given as a grid).
+    viscosity : float or None
+        Channel viscosity eta, Pa s (Newtonian, uniform; None: a grid, or another rheology).
+    rho_crust, rho_mantle, rho_water, rho_channel : float
+        Densities, kg/m^3.
+    wall_east, wall_north : float
+        Velocity of the upper wall relative to the lower wall, m/s.
+    gravity : float
+        Gravitational acceleration, m/s^2.
+    reference_thickness : float or None
+        Airy case only: crustal thickness where topography is at sea level, m.
+    """
+
+    channel_thickness: float | None
+    viscosity: float | None
+    rho_crust: float = constants.RHO_CRUST
+    rho_mantle: float = constants.RHO_MANTLE
+    rho_water: float = constants.RHO_WATER
+    rho_channel: float | None = None
+    wall_east: float = 0.0
+    wall_north: float = 0.0
+    gravity: float = constants.GRAVITY
+    reference_thickness: float | None = None
+
+    def __post_init__(self) -> None:
+        if self.rho_channel is None:
+            object.__setattr__(self, "rho_channel", self.rho_crust)
+        checks = [
+            ("channel.thickness", self.channel_thickness, '"15 km"'),
+            ("channel.viscosity", self.viscosity, '"1e19 Pa*s"'),
+            ("densities.crust", self.rho_crust, '"2800 kg/m^3"'),
+            ("densities.mantle", self.rho_mantle, '"3300 kg/m^3"'),
+            ("densities.channel", self.rho_channel, '"2800 kg/m^3"'),
+            ("constants.gravity", self.gravity, '"9.81 m/s^2"'),
+        ]
+        for key, value, example in checks:
+            if value is None and key in ("channel.thickness", "channel.viscosity"):
+                continue  # given as a grid, or not used by the rheology
+            if not value > 0:  # also catches NaN
+                raise CrustflowInputError(
+                    f"{key} must be positive (got {value:g} in SI); e.g. {example}"
+                )
+        if not self.rho_water >= 0:
+            raise CrustflowInputError('densities.water must not be negative; e.g. "1030 kg/m^3"')
+        if not self.rho_mantle > max(self.rho_crust, self.rho_channel, self.rho_water):
+            raise CrustflowInputError(
+                "densities.mantle must exceed the crust, channel and water densities for isostasy "
+                f"(mantle {self.rho_mantle:g}, crust {self.rho_crust:g}, channel {self.rho_channel:g} "
+                "kg/m^3); check the values"
+            )
+        if self.reference_thickness is not None and not self.reference_thickness > 0:
+            raise CrustflowInputError('grids.reference_thickness must be positive, e.g. "35 km"')
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """A parsed scenario: input grids, model parameters and output choices.
+
+    Attributes
+    ----------
+    title : str
+    topography, crust_thickness, moho_depth : Path or None
+        Input grid paths (absolute). At most one of crust_thickness and moho_depth.
+    crs : str or None
+        CRS for grids that carry none of their own.
+    parameters : ModelParameters
+    variables : tuple of str or None
+        Output variables (None: all).
+    formats : tuple of str
+        Output formats, from :data:`FORMATS`.
+    source : Path or None
+        The scenario file, if read from one.
+    written : dict
+        The scenario as written (for the run manifest).
+    """
+
+    title: str
+    topography: Path
+    parameters: ModelParameters
+    crust_thickness: Path | None = None
+    moho_depth: Path | None = None
+    crs: str | None = None
+    variables: tuple[str, ...] | None = None
+    formats: tuple[str, ...] = FORMATS
+    source: Path | None = None
+    written: dict = field(default_factory=dict, compare=False, repr=False)
+    sections: Path | None = None
+    regions: Path | None = None
+    channel: ChannelSetup = field(default_factory=ChannelSetup)
+    load: LoadSetup = field(default_factory=LoadSetup)
+    ensemble: object | None = (
+        None  #: crustflow.analyses.ensemble.run.EnsembleSpec when [ensemble] is given
+    )
+
+    def resolved(self) -> dict:
+        """The scenario resolved to SI units, as a JSON-ready dict."""
+        out = {
+            "title": self.title,
+            "grids": {
+                "topography": str(self.topography),
+                "crust_thickness": str(self.crust_thickness) if self.crust_thickness else None,
+                "moho_depth": str(self.moho_depth) if self.moho_depth else None,
+                "crs": self.crs,
+            },
+            "parameters_SI": asdict(self.parameters),
+            "channel": self.channel.describe(),
+            "load": self.load.describe(),
+            "budgets": {
+                "sections": str(self.sections) if self.sections else None,
+                "regions": str(self.regions) if self.regions else None,
+            },
+            "output": {
+                "variables": list(self.variables) if self.variables else "all",
+                "formats": list(self.formats),
+            },
+        }
+        return out
+
+    @property
+    def input_paths(self) -> list[Path]:
+        """Every input file the scenario names."""
+        paths = (
+            self.topography,
+            self.crust_thickness,
+            self.moho_depth,
+            self.sections,
+            self.regions,
+        )
+        grids = tuple(g.path for g in (*self.channel.grids.values(), *self.load.grids.values()))
+        return [p for p in paths + grids if p is not None]
+
+
+def _unknown_key(key: str, valid: list[str], where: str) -> CrustflowInputError:
+    close = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
+    hint = f"did you mean '{close[0]}'?" if close else f"valid keys: {', '.join(sorted(valid))}"
+    return CrustflowInputError(f"unknown key '{key}' in {where}; {hint}")
+
+
+def _check_keys(raw: dict, schema: dict, where: str) -> None:
+    for key, value in raw.items():
+        if key not in schema:
+            raise _unknown_key(key, list(schema), where)
+        if isinstance(schema[key], dict):
+            if not isinstance(value, dict):
+                raise CrustflowInputError(
+                    f"[{key}] must be a table (a [{key}] section), not a value"
+                )
+            _check_keys(value, schema[key], f"[{key}]")
+        elif isinstance(value, dict) and not schema[key].endswith(("|grid", "table")):
+            raise CrustflowInputError(
+                f"{where.strip('[]') or 'top level'} key '{key}' takes a value, not a table"
+            )
+
+
+def _path(value: object, key: str, base: Path) -> Path:
+    if not isinstance(value, str) or not value.strip():
+        raise CrustflowInputError(f'{key} must be a file path in quotes, e.g. {key} = "topo.tif"')
+    path = Path(value).expanduser()
+    return path if path.is_absolute() else (base / path)
+
+
+def scenario_from_dict(
+    raw: dict, base_dir: str | Path = ".", source: Path | None = None
+) -> Scenario:
+    """Build a :class:`Scenario` from a dict shaped like the TOML file.
+
+    Parameters
+    ----------
+    raw : dict
+        The scenario as nested tables (what :func:`tomllib.load` returns).
+    base_dir : path
+        Folder against which relative grid paths are resolved.
+    source : Path, optional
+        The file the dict came from (recorded in outputs).
+
+    Returns
+    -------
+    Scenario
+
+    Raises
+    ------
+    CrustflowInputError
+        Unknown keys, missing required keys, bare numbers for dimensional keys, bad values.
+    """
+    base = Path(base_dir).resolve()
+    _check_keys(raw, _SCHEMA, "the scenario's top level")
+    grids = raw.get("grids")
+    if not grids or "topography" not in grids:
+        raise CrustflowInputError(
+            'the scenario needs [grids] topography = "topo.tif" (a raster of '
+            "surface elevation in m)"
+        )
+    if "crust_thickness" in grids and "moho_depth" in grids:
+        raise CrustflowInputError(
+            "give at most one of grids.crust_thickness and grids.moho_depth; remove the other"
+        )
+    dens = raw.get("densities", {})
+    chan = raw.get("channel", {})
+    thickness, viscosity, channel_setup = parse_channel(chan, base)
+    load_setup = parse_load(raw, chan, base)
+    reference = None
+    if "reference_thickness" in grids:
+        if "crust_thickness" in grids or "moho_depth" in grids:
+            raise CrustflowInputError(
+                "grids.reference_thickness is for the Airy case only; remove it or "
+                "remove grids.crust_thickness / grids.moho_depth"
+            )
+        reference = parse_quantity(
+            grids["reference_thickness"], "grids.reference_thickness", "length"
+        )
+    elif "crust_thickness" not in grids and "moho_depth" not in grids:
+        raise CrustflowInputError(
+            "with neither grids.crust_thickness nor grids.moho_depth, give "
+            'grids.reference_thickness (e.g. "35 km") for Airy isostasy'
+        )
+    wall = (0.0, 0.0)
+    if "upper_velocity" in raw.get("walls", {}):
+        wall = parse_vector(raw["walls"]["upper_velocity"], "walls.upper_velocity", "velocity")
+    kw = {}
+    for key, name in (
+        ("crust", "rho_crust"),
+        ("mantle", "rho_mantle"),
+        ("water", "rho_water"),
+        ("channel", "rho_channel"),
+    ):
+        if key in dens and not (key == "crust" and isinstance(dens[key], dict)):
+            kw[name] = parse_quantity(dens[key], f"densities.{key}", "density")
+    if "gravity" in raw.get("constants", {}):
+        kw["gravity"] = parse_quantity(
+            raw["constants"]["gravity"], "constants.gravity", "acceleration"
+        )
+    params = ModelParameters(
+        channel_thickness=thickness,
+        viscosity=viscosity,
+        wall_east=wall[0],
+        wall_north=wall[1],
+        reference_thickness=reference,
+        **kw,
+    )
+    output = raw.get("output", {})
+    variables = output.get("variables")
+    if variables is not None:
+        from crustflow.engine.fields import VARIABLES
+
+        if not isinstance(variables, list) or not all(isinstance(v, str) for v in variables):
+            raise CrustflowInputError(
+                'output.variables must be a list of names, e.g. ["flux_east"]'
+            )
+        for name in variables:
+            if name not in VARIABLES:
+                raise _unknown_key(name, list(VARIABLES), "output.variables")
+        variables = tuple(dict.fromkeys(variables))
+    formats = output.get("formats", list(FORMATS))
+    if not isinstance(formats, list) or not all(isinstance(f, str) for f in formats):
+        raise CrustflowInputError(
+            'output.formats must be a list, e.g. ["netcdf", "geotiff", "figure"]'
+        )
+    for name in formats:
+        if name not in FORMATS:
+            raise _unknown_key(name, list(FORMATS), "output.formats")
+    crs = grids.get("crs")
+    if crs is not None and not isinstance(crs, str):
+        raise CrustflowInputError('grids.crs must be a string, e.g. crs = "EPSG:32633"')
+    title = raw.get("title", source.stem if source else "crustflow scenario")
+    if not isinstance(title, str):
+        raise CrustflowInputError('title must be a string in quotes, e.g. title = "My plateau"')
+    budgets = raw.get("budgets", {})
+    sections = (
+        _path(budgets["sections"], "budgets.sections", base) if "sections" in budgets else None
+    )
+    regions = _path(budgets["regions"], "budgets.regions", base) if "regions" in budgets else None
+    ensemble = None
+    if "ensemble" in raw:
+        if not isinstance(raw["ensemble"], dict):
+            raise CrustflowInputError(
+                "[ensemble] must be a table with members, seed and [ensemble.vary]"
+            )
+        from crustflow.analyses.ensemble.run import parse_ensemble
+
+        ensemble = parse_ensemble(raw["ensemble"], params)
+    return Scenario(
+        ensemble=ensemble,
+        load=load_setup,
+        channel=channel_setup,
+        sections=sections,
+        regions=regions,
+        title=title,
+        topography=_path(grids["topography"], "grids.topography", base),
+        crust_thickness=(
+            _path(grids["crust_thickness"], "grids.crust_thickness", base)
+            if "crust_thickness" in grids
+            else None
+        ),
+        moho_depth=_path(grids["moho_depth"], "grids.moho_depth", base)
+        if "moho_depth" in grids
+        else None,
+        crs=crs,
+        parameters=params,
+        variables=variables,
+        formats=tuple(dict.fromkeys(formats)),
+        source=source,
+        written=raw,
+    )
+
+
+def load_scenario(path: str | Path) -> Scenario:
+    """Read and validate a scenario file (TOML).
+
+    Parameters
+    ----------
+    path : path
+        The scenario file. Relative grid paths inside it resolve against its folder.
+
+    Returns
+    -------
+    Scenario
+
+    Raises
+    ------
+    CrustflowInputError
+        Missing or unreadable file, TOML syntax errors, and every check of :func:`scenario_from_dict`.
+    """
+    path = Path(path).expanduser()
+    if not path.is_file():
+        raise CrustflowInputError(f"scenario file not found: {path}; check the path")
+    try:
+        with path.open("rb") as fh:
+            raw = tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        raise CrustflowInputError(
+            f"scenario file {path} is not valid TOML ({exc}); fix the syntax"
+        ) from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise CrustflowInputError(f"cannot read scenario file {path} ({exc})") from None
+    return scenario_from_dict(raw, base_dir=path.parent, source=path.resolve())
