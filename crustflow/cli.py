@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from crustflow import __version__
+from crustflow._version import __version__
 from crustflow.errors import CrustflowInputError
 
 CAUTION_HELP = (
@@ -243,7 +243,7 @@ def _print_table(table) -> None:
 
 
 def _summary(result: dict) -> None:
-    from crustflow.engine.fields import VARIABLES
+    from crustflow.variables import VARIABLES
 
     labels = {
         "flux_magnitude": "flux magnitude",

@@ -13,7 +13,7 @@ import xarray as xr
 from conftest import SCENARIO, UTM, airy, bump, write_grid
 
 from crustflow.cli import main
-from crustflow.engine.api import VARIABLES
+from crustflow.variables import VARIABLES
 
 
 @pytest.fixture(scope="module")

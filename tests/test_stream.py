@@ -9,7 +9,7 @@ from conftest import SCENARIO, airy, bump, write_grid
 
 import crustflow
 from crustflow.cli import main
-from crustflow.engine.api import VARIABLES
+from crustflow.variables import VARIABLES
 
 
 def _compare(scenario_path, out, strip_rows):

@@ -34,7 +34,7 @@ from scipy.integrate import simpson
 
 import crustflow
 from crustflow.constants import SECONDS_PER_YEAR
-from crustflow.engine.api import CAUTION
+from crustflow.variables import CAUTION
 
 #: Projected frame of the synthetic grid (UTM zone 25N, over open ocean; a frame only).
 CRS = "EPSG:32625"

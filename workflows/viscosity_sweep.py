@@ -36,8 +36,8 @@ import xarray as xr
 
 import crustflow
 from crustflow.constants import SECONDS_PER_YEAR
-from crustflow.engine.api import CAUTION
 from crustflow.samples import plateau as samples
+from crustflow.variables import CAUTION
 
 #: Channel viscosities of the sweep, Pa s.
 VISCOSITIES = (1e18, 1e19, 1e20, 1e21)

@@ -15,21 +15,12 @@ import numpy as np
 import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
-from crustflow import __version__
-from crustflow.engine.fields import (
-    CAUTION,
-    VARIABLES,
-    ThinCrustCheck,
-    Variable,
-    crust_thickness_of,
-    fields_si,
-    to_practical,
-    variable_attrs,
-    whole_grid_load,
-)
+from crustflow._version import __version__
+from crustflow.engine.fields import ThinCrustCheck, crust_thickness_of, fields_si, whole_grid_load
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import grid_geometry
 from crustflow.scenario.document import ModelParameters, Scenario
+from crustflow.variables import CAUTION, VARIABLES, Variable, to_practical, variable_attrs
 
 __all__ = [
     "Variable",

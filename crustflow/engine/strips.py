@@ -19,12 +19,9 @@ import numpy as np
 
 from crustflow.engine.fields import (
     CELL_EXTRAS,
-    VARIABLES,
     ThinCrustCheck,
     crust_thickness_of,
     fields_si,
-    to_practical,
-    variable_attrs,
     whole_grid_load,
 )
 from crustflow.errors import CrustflowInputError
@@ -32,6 +29,7 @@ from crustflow.geometry.grid import grid_geometry
 from crustflow.io.grids import GridChecks, close_sources, open_sources, provenance
 from crustflow.scenario.channel import CellInputCheck
 from crustflow.scenario.load import ColumnCheck
+from crustflow.variables import VARIABLES, to_practical, variable_attrs
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
 
@@ -232,7 +230,7 @@ def _run_strips(
                 )
                 writers.append(side)
         if "geotiff" in scenario.formats:
-            from crustflow.engine.fields import CAUTION
+            from crustflow.variables import CAUTION
 
             tifs = {}
             for n in names:

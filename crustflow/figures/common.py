@@ -38,7 +38,7 @@ def pyplot():
 
 def add_caution(fig, text: str = "", *, foot: float = FOOT_SHARE) -> None:
     """Reserve the figure's foot and write ``text`` followed by the model caution there."""
-    from crustflow.engine.fields import CAUTION
+    from crustflow.variables import CAUTION
 
     fig.get_layout_engine().set(rect=(0.0, foot, 1.0, 1.0 - foot))
     fig.text(

@@ -79,7 +79,7 @@ class FieldGrid:
     Parameters
     ----------
     fields : xarray.Dataset
-        The fields, dims (y, x), in the practical units of :data:`crustflow.engine.api.VARIABLES`.
+        The fields, dims (y, x), in the practical units of :data:`crustflow.variables.VARIABLES`.
     crs : pyproj.CRS
         The grid's CRS.
     geometry : GridGeometry

@@ -268,8 +268,8 @@ def to_cog(path: str | Path) -> None:
 
 def netcdf_attrs(title: str, scenario_text: str = "", parameters: dict | None = None) -> dict:
     """Global attributes of ``fields.nc``."""
-    from crustflow import __version__
-    from crustflow.engine.fields import CAUTION
+    from crustflow._version import __version__
+    from crustflow.variables import CAUTION
 
     return {
         "Conventions": "CF-1.8",

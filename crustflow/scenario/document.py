@@ -318,7 +318,7 @@ def scenario_from_dict(
     output = raw.get("output", {})
     variables = output.get("variables")
     if variables is not None:
-        from crustflow.engine.fields import VARIABLES
+        from crustflow.variables import VARIABLES
 
         if not isinstance(variables, list) or not all(isinstance(v, str) for v in variables):
             raise CrustflowInputError(

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import difflib
 
-from crustflow.engine.fields import VARIABLES
 from crustflow.errors import CrustflowInputError
 from crustflow.scenario.document import ModelParameters
 from crustflow.scenario.ensemble_spec import (
@@ -22,6 +21,7 @@ from crustflow.scenario.ensemble_spec import (
     _Key,
 )
 from crustflow.units import parse_quantity
+from crustflow.variables import VARIABLES
 
 #: Sampling designs ``[ensemble] sampling`` may name.
 SAMPLING = ("latin-hypercube", "random")

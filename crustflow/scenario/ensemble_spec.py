@@ -182,7 +182,7 @@ class EnsembleSpec:
     percentiles : tuple of float
         Requested percentiles, 0 to 100, ascending.
     variables : tuple of str
-        Output variables to summarise (names of :data:`crustflow.engine.fields.VARIABLES`).
+        Output variables to summarise (names of :data:`crustflow.variables.VARIABLES`).
     exceedance_variable : str or None
         Variable whose exceedance probabilities are mapped.
     thresholds : tuple of float

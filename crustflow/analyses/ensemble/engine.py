@@ -266,7 +266,7 @@ def _whole_grid_budgets(grid, n_jobs, fields, features, rows, memory, bar):
     import xarray as xr
 
     from crustflow.analyses.budgets import budget_table
-    from crustflow.engine.fields import to_practical
+    from crustflow.variables import to_practical
 
     names = ("flux_east", "flux_north", "thickening_rate")
     per_pass = max(1, memory // (8 * len(names) * grid.height * grid.width))

@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from crustflow.analyses.ensemble.stats import Reducer, sorted_percentiles
-from crustflow.engine.fields import CAUTION, VARIABLES, to_practical
+from crustflow.variables import CAUTION, VARIABLES, to_practical
 
 __all__ = [
     "MapWriter",
@@ -397,7 +397,7 @@ def ensemble_map(
     crs
         The grid's CRS (pyproj or rasterio), for axis labels.
     name : str
-        Variable name (a key of :data:`crustflow.engine.fields.VARIABLES`).
+        Variable name (a key of :data:`crustflow.variables.VARIABLES`).
     path : path
         Destination PNG.
     title : str

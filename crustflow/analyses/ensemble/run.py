@@ -17,7 +17,7 @@ Two engines give the same numbers (``tests/test_ensemble.py``):
 
 Conventions
 -----------
-- SI inside; practical units at the edges: the units of :data:`crustflow.engine.fields.VARIABLES` in files,
+- SI inside; practical units at the edges: the units of :data:`crustflow.variables.VARIABLES` in files,
   and the units named in the column headers of the sampled values.
 - Percentiles: numpy's ``"linear"`` method (definition 7 of Hyndman & Fan 1996), over the members of a
   cell. The order statistics are taken on the member values rounded to float32, the precision of the
