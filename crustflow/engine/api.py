@@ -19,7 +19,8 @@ from crustflow._version import __version__
 from crustflow.engine.fields import ThinCrustCheck, crust_thickness_of, fields_si, whole_grid_load
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import grid_geometry
-from crustflow.scenario.document import ModelParameters, Scenario
+from crustflow.scenario.document import Scenario
+from crustflow.scenario.parameters import ModelParameters
 from crustflow.variables import CAUTION, VARIABLES, Variable, to_practical, variable_attrs
 
 __all__ = [

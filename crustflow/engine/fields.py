@@ -17,7 +17,7 @@ from crustflow.geometry.grid import azimuth, divergence
 from crustflow.physics import isostasy as load
 from crustflow.physics.channel import ChannelSolution
 from crustflow.scenario.channel import ChannelSetup, solve_cells
-from crustflow.scenario.document import ModelParameters
+from crustflow.scenario.parameters import ModelParameters
 from crustflow.variables import VARIABLES
 
 __all__ = [

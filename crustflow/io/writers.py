@@ -29,7 +29,6 @@ if TYPE_CHECKING:
 __all__ = [
     "write_netcdf",
     "write_geotiff",
-    "write_outputs",
     "package_versions",
     "check_out_dir",
     "atomic_folder",
@@ -391,72 +390,6 @@ def write_manifest(folder: Path, manifest: dict, written: list[str]) -> None:
     """Write ``run.json`` listing the outputs."""
     manifest = dict(manifest, outputs=list(written) + [MANIFEST])
     (Path(folder) / MANIFEST).write_text(json.dumps(manifest, indent=2, default=str) + "\n")
-
-
-def write_outputs(
-    ds: xr.Dataset,
-    out: str | Path,
-    *,
-    manifest: dict,
-    variables=None,
-    formats=("netcdf", "geotiff", "figure"),
-    inputs=(),
-    stage=None,
-) -> Path:
-    """Write the outputs of fields already in memory into ``out``, atomically.
-
-    Parameters
-    ----------
-    ds : xarray.Dataset
-        Fields from :func:`crustflow.compute_fields` / :func:`crustflow.solve`.
-    out : path
-        Output folder; replaced as a whole if it holds an earlier crustflow run.
-    manifest : dict
-        Run manifest (scenario, versions, checksums, timings); written as ``run.json``.
-    variables : list of str, optional
-        Variables for NetCDF and GeoTIFF (default: all).
-    formats : sequence of str
-        Any of "netcdf", "geotiff", "figure".
-    inputs : sequence of path
-        Input files, which must not lie inside ``out``.
-    stage : callable, optional
-        Called with a stage name as each output kind starts.
-
-    Returns
-    -------
-    Path
-        The output folder.
-    """
-    note = stage or (lambda name: None)
-    with atomic_folder(out, inputs) as tmp:
-        written = []
-        names = _file_variables(ds, variables)
-        if "netcdf" in formats:
-            note("write NetCDF")
-            write_netcdf(
-                ds,
-                tmp / "fields.nc",
-                variables=names,
-                attrs={"scenario": json.dumps(manifest.get("scenario_as_written", {}))},
-            )
-            written.append("fields.nc")
-        if "geotiff" in formats:
-            note("write GeoTIFF")
-            crs, transform = ds.rio.crs, ds.rio.transform()
-            for name in names:
-                da = ds[name].copy()
-                da.attrs["caution"] = ds.attrs.get("caution", "")
-                write_geotiff(da, tmp / f"{name}.tif", crs=crs, transform=transform)
-                written.append(f"{name}.tif")
-        if "figure" in formats:
-            note("draw figure")
-            from crustflow.figures.common import flux_map
-
-            flux_map(ds, tmp / "flux_map.png")
-            written.append("flux_map.png")
-        note("write manifest")
-        write_manifest(tmp, manifest, written)
-    return Path(out).expanduser().resolve()
 
 
 def base_manifest(scenario, timings: dict, provenance: dict | None = None) -> dict:

@@ -35,12 +35,14 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass, fields
-from typing import TYPE_CHECKING, TypeAlias
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from crustflow.errors import CrustflowInputError
 from crustflow.physics.channel_kernels import (
+    Array,
+    ArrayLike,
     _as_float,
     _mean_velocity,
     _peak_speed,
@@ -50,7 +52,7 @@ from crustflow.physics.channel_kernels import (
 )
 
 if TYPE_CHECKING:
-    import dask.array as da
+    pass
 
 __all__ = [
     "BACKFLOW_RTOL",
@@ -63,10 +65,6 @@ __all__ = [
     "zero_flux_drive",
 ]
 
-#: NumPy or dask array (or NumPy scalar) of float64 values.
-Array: TypeAlias = "np.ndarray | da.Array"
-#: Anything accepted as input: an array as above, or a Python number.
-ArrayLike: TypeAlias = "np.ndarray | da.Array | float"
 
 #: Relative tolerance (dimensionless) of the backflow test. A numerical choice, not physical data:
 #: about 10^7 times the float64 rounding unit, so rounding in cases that sit exactly on the

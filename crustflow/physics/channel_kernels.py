@@ -17,14 +17,19 @@ References
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, TypeAlias
 
 import numpy as np
 
 from crustflow.errors import CrustflowInputError
 
 if TYPE_CHECKING:
-    from crustflow.physics.channel import Array, ArrayLike
+    import dask.array as da
+
+#: A numpy or dask array of float64 (channel inputs and outputs keep the array type given).
+Array: TypeAlias = "np.ndarray | da.Array"
+#: What the channel functions accept: arrays or scalars, broadcast together.
+ArrayLike: TypeAlias = "np.ndarray | da.Array | float"
 
 
 # --------------------------------------------------------------------------------------------------

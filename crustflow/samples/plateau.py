@@ -17,6 +17,9 @@ from pathlib import Path
 
 import numpy as np
 
+from crustflow.samples.rasters import SAMPLE_CRS, ramp, write_raster
+from crustflow.samples.wedge import write_wedge_sample
+
 __all__ = [
     "plateau_elevation",
     "plateau_crust_thickness",
@@ -28,8 +31,6 @@ __all__ = [
 #: Sample scenario folders under sample_grids/.
 SAMPLE_NAMES = ("plateau", "plateau-lonlat", "wedge")
 
-#: Projected frame of the invented region (UTM zone 25N over the open Atlantic; a frame only).
-SAMPLE_CRS = "EPSG:32625"
 #: Region bounds in SAMPLE_CRS, m: west, south, east, north.
 SAMPLE_BOUNDS = (100e3, 3300e3, 900e3, 3900e3)
 
@@ -59,21 +60,17 @@ regions = "{features}basins.geojson"
 """
 
 
-def _ramp(s, centre, width):
-    return 0.5 * (1.0 + np.tanh((s - centre) / width))
-
-
 def plateau_elevation(x, y):
     """Elevation of the invented plateau, m, at projected coordinates ``x``, ``y`` (m)."""
     xk, yk = np.asarray(x) / 1e3, np.asarray(y) / 1e3
     plateau = (
-        _ramp(yk, 3470.0, 110.0)
-        * (1.0 - _ramp(yk, 3760.0, 18.0))
-        * _ramp(xk, 260.0, 45.0)
-        * (1.0 - _ramp(xk, 700.0, 90.0))
+        ramp(yk, 3470.0, 110.0)
+        * (1.0 - ramp(yk, 3760.0, 18.0))
+        * ramp(xk, 260.0, 45.0)
+        * (1.0 - ramp(xk, 700.0, 90.0))
     )
     ridges = 180.0 * np.sin(2 * np.pi * (xk + 0.4 * yk) / 140.0) * plateau
-    sea = (1.0 - _ramp(xk, 330.0, 40.0)) * (1.0 - _ramp(yk, 3480.0, 45.0))
+    sea = (1.0 - ramp(xk, 330.0, 40.0)) * (1.0 - ramp(yk, 3480.0, 45.0))
     return 250.0 + 4300.0 * plateau + ridges - 2400.0 * sea
 
 
@@ -87,30 +84,6 @@ def plateau_crust_thickness(
     xk, yk = np.asarray(x) / 1e3, np.asarray(y) / 1e3
     keel = 4000.0 * np.exp(-((xk - 560.0) ** 2 + (yk - 3660.0) ** 2) / (2 * 90.0**2))
     return np.where(h >= 0, land, sea) + keel
-
-
-def _write(path: Path, data: np.ndarray, crs: str, transform, description: str) -> None:
-    import rasterio
-
-    profile = dict(
-        driver="GTiff",
-        width=data.shape[1],
-        height=data.shape[0],
-        count=1,
-        dtype="float32",
-        crs=crs,
-        transform=transform,
-        nodata=-9999.0,
-        compress="deflate",
-        predictor=3,
-        tiled=True,
-        blockxsize=64,
-        blockysize=64,
-    )
-    with rasterio.open(path, "w", **profile) as dst:
-        dst.write(data.astype("float32"), 1)
-        dst.set_band_description(1, description)
-        dst.units = ("m",)
 
 
 def write_sample_grids(folder: str | Path) -> list[Path]:
@@ -136,7 +109,9 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
         xs = np.arange(west + cell / 2, east, cell)
         ys = np.arange(north - cell / 2, south, -cell)
         xx, yy = np.meshgrid(xs, ys)
-        _write(out / name, func(xx, yy), SAMPLE_CRS, from_origin(west, north, cell, cell), text)
+        write_raster(
+            out / name, func(xx, yy), SAMPLE_CRS, from_origin(west, north, cell, cell), text
+        )
     _write_features(out)
     (out / "scenario.toml").write_text(SCENARIO_TEXT.format(suffix="", features=""))
     written.append(out / "scenario.toml")
@@ -155,14 +130,14 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
     out = folder / "plateau-lonlat"
     out.mkdir(parents=True, exist_ok=True)
     transform = from_origin(lon_w, lat_n, step, step)
-    _write(
+    write_raster(
         out / "topography.tif",
         plateau_elevation(px, py),
         "EPSG:4326",
         transform,
         "surface elevation above sea level (m)",
     )
-    _write(
+    write_raster(
         out / "crust_thickness.tif",
         plateau_crust_thickness(px, py),
         "EPSG:4326",
@@ -173,7 +148,6 @@ def write_sample_grids(folder: str | Path) -> list[Path]:
         SCENARIO_TEXT.format(suffix=", lon/lat grid", features="../plateau/")
     )
     written.append(out / "scenario.toml")
-    from crustflow.samples.wedge import write_wedge_sample
 
     written.append(write_wedge_sample(folder / "wedge"))
     return written

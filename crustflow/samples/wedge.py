@@ -30,7 +30,7 @@ from pathlib import Path
 
 import numpy as np
 
-from crustflow.samples.plateau import SAMPLE_CRS, _ramp, _write
+from crustflow.samples.rasters import SAMPLE_CRS, ramp, write_raster
 
 __all__ = [
     "WEDGE_BOUNDS",
@@ -141,28 +141,28 @@ def _across(x):
 def wedge_bathymetry(x, y):
     """Sea-floor elevation, m (negative), at projected coordinates ``x``, ``y`` (m)."""
     edge = 70.0 + _lobe(y)  # shelf edge, km east of the west edge
-    return -SHELF_DEPTH - (BASIN_DEPTH - SHELF_DEPTH) * _ramp(_across(x), edge + 15.0, 8.0)
+    return -SHELF_DEPTH - (BASIN_DEPTH - SHELF_DEPTH) * ramp(_across(x), edge + 15.0, 8.0)
 
 
 def wedge_sediment_thickness(x, y):
     """Thickness of the sediment wedge, m, at projected coordinates ``x``, ``y`` (m)."""
     s = _across(x)
     edge = 70.0 + _lobe(y)
-    wedge = 800.0 + 4200.0 * _ramp(s, edge, 30.0)
-    toe = _ramp(s, edge + 70.0, 8.0)
+    wedge = 800.0 + 4200.0 * ramp(s, edge, 30.0)
+    toe = ramp(s, edge + 70.0, 8.0)
     return wedge * (1.0 - toe) + 1000.0 * toe
 
 
 def wedge_salt_thickness(x, y):
     """Thickness of the salt layer, m, at projected coordinates ``x``, ``y`` (m)."""
     s, _ = np.broadcast_arrays(_across(x), np.asarray(y))
-    return 1500.0 + 1000.0 * (1.0 - _ramp(s, 100.0, 40.0))
+    return 1500.0 + 1000.0 * (1.0 - ramp(s, 100.0, 40.0))
 
 
 def wedge_crust_thickness(x, y):
     """Crustal thickness, sea floor to Moho, m (sediments and salt included)."""
     s, _ = np.broadcast_arrays(_across(x), np.asarray(y))
-    return 14e3 + 10e3 * (1.0 - _ramp(s, 110.0, 45.0))
+    return 14e3 + 10e3 * (1.0 - ramp(s, 110.0, 45.0))
 
 
 def write_wedge_sample(folder: str | Path) -> Path:
@@ -210,7 +210,7 @@ def write_wedge_sample(folder: str | Path) -> Path:
         ("salt_top.tif", salt_top, "depth of the salt top below sea level (m)"),
         ("salt_base.tif", salt_base, "depth of the salt base below sea level (m)"),
     ):
-        _write(folder / name, data, SAMPLE_CRS, transform, text)
+        write_raster(folder / name, data, SAMPLE_CRS, transform, text)
     (folder / "README.md").write_text(README_TEXT)
     scenario = folder / "scenario.toml"
     scenario.write_text(SCENARIO_TEXT)

@@ -10,7 +10,6 @@ from __future__ import annotations
 import difflib
 
 from crustflow.errors import CrustflowInputError
-from crustflow.scenario.document import ModelParameters
 from crustflow.scenario.ensemble_spec import (
     DEFAULT_PERCENTILES,
     DEFAULT_VARIABLES,
@@ -20,6 +19,7 @@ from crustflow.scenario.ensemble_spec import (
     VectorDistribution,
     _Key,
 )
+from crustflow.scenario.parameters import ModelParameters
 from crustflow.units import parse_quantity
 from crustflow.variables import VARIABLES
 

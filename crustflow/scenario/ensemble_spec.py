@@ -19,10 +19,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from crustflow.analyses.ensemble import report
 from crustflow.constants import SECONDS_PER_YEAR
 from crustflow.errors import CrustflowInputError
-from crustflow.scenario.document import ModelParameters
+from crustflow.scenario.parameters import ModelParameters
 
 #: Percentiles and report variables when ``[ensemble.report]`` does not give them.
 DEFAULT_PERCENTILES = (5.0, 50.0, 95.0)
@@ -228,7 +227,7 @@ class EnsembleSpec:
                 "variable": self.exceedance_variable,
                 "thresholds_SI": list(self.thresholds),
             },
-            "percentile_method": report.PERCENTILE_METHOD,
+            "percentile_method": PERCENTILE_METHOD,
         }
 
 
@@ -311,3 +310,10 @@ def sample_members(spec: EnsembleSpec, parameters: ModelParameters):
     for j, d in enumerate(dims):
         table[d.label] = values[:, j] * VARIABLE_KEYS[d.key].factor
     return members, table
+
+
+#: How the percentile maps are computed (also a NetCDF attribute).
+PERCENTILE_METHOD = (
+    "numpy.percentile method 'linear' (Hyndman & Fan 1996, definition 7) over the members of each "
+    "cell, on member values rounded to float32"
+)

@@ -30,6 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from crustflow.analyses.ensemble.stats import Reducer, sorted_percentiles
+from crustflow.scenario.ensemble_spec import PERCENTILE_METHOD
 from crustflow.variables import CAUTION, VARIABLES, to_practical
 
 __all__ = [
@@ -45,11 +46,6 @@ __all__ = [
     "PERCENTILE_METHOD",
 ]
 
-#: How the percentile maps are computed (also a NetCDF attribute).
-PERCENTILE_METHOD = (
-    "numpy.percentile method 'linear' (Hyndman & Fan 1996, definition 7) over the members of each "
-    "cell, on member values rounded to float32"
-)
 
 #: m^3/yr in one km^3/Myr: 1e9 m^3 / 1e6 yr (definition).
 M3_PER_YR_PER_KM3_PER_MYR = 1e3

@@ -67,15 +67,16 @@ from crustflow.scenario.ensemble import DISTRIBUTIONS, SAMPLING, parse_ensemble
 from crustflow.scenario.ensemble import WHOLE_GRID as WHOLE_GRID
 from crustflow.scenario.ensemble_spec import DEFAULT_PERCENTILES as DEFAULT_PERCENTILES
 from crustflow.scenario.ensemble_spec import DEFAULT_VARIABLES as DEFAULT_VARIABLES
-from crustflow.scenario.ensemble_spec import U_HIGH as U_HIGH
-from crustflow.scenario.ensemble_spec import U_LOW as U_LOW
 from crustflow.scenario.ensemble_spec import (
+    PERCENTILE_METHOD,
     VARIABLE_KEYS,
     Distribution,
     EnsembleSpec,
     VectorDistribution,
     sample_members,
 )
+from crustflow.scenario.ensemble_spec import U_HIGH as U_HIGH
+from crustflow.scenario.ensemble_spec import U_LOW as U_LOW
 
 __all__ = [
     "Distribution",
@@ -281,7 +282,7 @@ def run_ensemble(
         "fast_path_obstacle": obstacle,
         "members": M,
         "spec": spec.describe(),
-        "percentile_method": report.PERCENTILE_METHOD,
+        "percentile_method": PERCENTILE_METHOD,
         "timings": {k: round(v, 4) for k, v in timings.items()},
         "shape": [grid.height, grid.width],
         "strip_rows": rows,

@@ -1,0 +1,125 @@
+"""The package's layers: every internal import points down, and there is no cycle.
+
+Walks the source with ``ast`` (imports inside functions included) and checks each import against
+the layer order written at the top of DEVELOPERS.md. Only ``crustflow/__init__.py`` (lazy re-exports)
+may import upward.
+"""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+PACKAGE = Path(__file__).resolve().parents[1] / "crustflow"
+
+#: Layer of each top-level module or subpackage; an import may only point to a lower or equal
+#: number, and equal numbers only within one subpackage (siblings of one layer stay apart).
+LAYERS = {
+    "_version": 0,
+    "errors": 0,
+    "constants": 1,
+    "units": 1,
+    "variables": 2,
+    "geometry": 3,
+    "physics": 4,
+    "scenario": 5,
+    "io": 6,
+    "engine": 7,
+    "figures": 8,
+    "analyses": 9,
+    "samples": 9,
+    "commands": 10,
+    "cli": 11,
+    "__main__": 12,
+}
+
+
+def _modules():
+    for path in sorted(PACKAGE.rglob("*.py")):
+        parts = path.relative_to(PACKAGE.parent).with_suffix("").parts
+        if parts[-1] == "__init__":
+            parts = parts[:-1]
+        yield ".".join(parts), path
+
+
+def _imports(name: str, path: Path):
+    tree = ast.parse(path.read_text())
+    package = name if path.name == "__init__.py" else name.rsplit(".", 1)[0]
+    for node in ast.walk(tree):
+        if isinstance(node, ast.ImportFrom):
+            if node.level:
+                base = package.split(".")[: len(package.split(".")) - node.level + 1]
+                target = ".".join(base + ([node.module] if node.module else []))
+            else:
+                target = node.module or ""
+            targets = [target] + [f"{target}.{a.name}" for a in node.names]
+        elif isinstance(node, ast.Import):
+            targets = [a.name for a in node.names]
+        else:
+            continue
+        for t in targets:
+            if t.startswith("crustflow."):
+                yield node.lineno, t
+
+
+def _layer(module: str) -> tuple[int, str]:
+    top = module.split(".")[1]
+    return LAYERS[top], top
+
+
+def _edges():
+    known = {name for name, _ in _modules()}
+    for name, path in _modules():
+        if name == "crustflow":
+            continue
+        for line, target in _imports(name, path):
+            while target not in known and "." in target:
+                target = target.rsplit(".", 1)[0]
+            if target != name and target != "crustflow":
+                yield name, path, line, target
+
+
+def test_every_module_has_a_layer():
+    tops = {name.split(".")[1] for name, _ in _modules() if name != "crustflow"}
+    assert tops <= set(LAYERS), sorted(tops - set(LAYERS))
+
+
+def test_imports_point_down():
+    upward = []
+    for name, path, line, target in _edges():
+        (mine, my_top), (theirs, their_top) = _layer(name), _layer(target)
+        if theirs > mine or (theirs == mine and my_top != their_top):
+            upward.append(f"{path.relative_to(PACKAGE.parent)}:{line} {name} -> {target}")
+    assert not upward, "imports that point up or sideways:\n" + "\n".join(upward)
+
+
+def test_no_import_cycles():
+    graph: dict[str, set[str]] = {}
+    for name, _, _, target in _edges():
+        graph.setdefault(name, set()).add(target)
+    # Only true submodule edges: a package's __init__ importing its own modules is not a cycle.
+    cycles = []
+    state: dict[str, int] = {}
+
+    def visit(node, stack):
+        state[node] = 1
+        stack.append(node)
+        for nxt in graph.get(node, ()):
+            if nxt.startswith(node + "."):
+                continue
+            if state.get(nxt) == 1:
+                cycles.append(" -> ".join(stack[stack.index(nxt) :] + [nxt]))
+            elif state.get(nxt) is None:
+                visit(nxt, stack)
+        stack.pop()
+        state[node] = 2
+
+    for node in sorted(graph):
+        if state.get(node) is None:
+            visit(node, [])
+    assert not cycles, "import cycles:\n" + "\n".join(cycles)
+
+
+def test_package_root_stays_small():
+    root = [p for p in PACKAGE.glob("*.py")]
+    assert len(root) <= 12, sorted(p.name for p in root)
