@@ -19,6 +19,7 @@ from crustflow.scenario.ensemble import parse_ensemble
 from crustflow.scenario.load import LoadSetup, parse_load
 from crustflow.scenario.parameters import ModelParameters
 from crustflow.units import parse_quantity, parse_vector
+from crustflow.variables import VARIABLES
 
 __all__ = ["ModelParameters", "Scenario", "load_scenario", "scenario_from_dict", "FORMATS"]
 
@@ -202,7 +203,29 @@ def scenario_from_dict(
     """
     base = Path(base_dir).resolve()
     _check_keys(raw, _SCHEMA, "the scenario's top level")
-    grids = raw.get("grids")
+    chan = raw.get("channel", {})
+    thickness, viscosity, channel_setup = parse_channel(chan, base)
+    grids = _parse_grids(raw.get("grids"), base)
+    params = _parse_parameters(raw, thickness, viscosity, grids.pop("reference_thickness"))
+    title = raw.get("title", source.stem if source else "crustflow scenario")
+    if not isinstance(title, str):
+        raise CrustflowInputError('title must be a string in quotes, e.g. title = "My plateau"')
+    return Scenario(
+        title=title,
+        parameters=params,
+        channel=channel_setup,
+        load=parse_load(raw, chan, base),
+        **grids,
+        **_parse_output(raw.get("output", {})),
+        **_parse_budgets(raw.get("budgets", {}), base),
+        ensemble=_parse_ensemble_table(raw, params),
+        source=source,
+        written=raw,
+    )
+
+
+def _parse_grids(grids: dict | None, base: Path) -> dict:
+    """``[grids]``: input paths, the CRS and (Airy case) the reference thickness."""
     if not grids or "topography" not in grids:
         raise CrustflowInputError(
             'the scenario needs [grids] topography = "topo.tif" (a raster of '
@@ -212,10 +235,6 @@ def scenario_from_dict(
         raise CrustflowInputError(
             "give at most one of grids.crust_thickness and grids.moho_depth; remove the other"
         )
-    dens = raw.get("densities", {})
-    chan = raw.get("channel", {})
-    thickness, viscosity, channel_setup = parse_channel(chan, base)
-    load_setup = parse_load(raw, chan, base)
     reference = None
     if "reference_thickness" in grids:
         if "crust_thickness" in grids or "moho_depth" in grids:
@@ -231,6 +250,24 @@ def scenario_from_dict(
             "with neither grids.crust_thickness nor grids.moho_depth, give "
             'grids.reference_thickness (e.g. "35 km") for Airy isostasy'
         )
+    crs = grids.get("crs")
+    if crs is not None and not isinstance(crs, str):
+        raise CrustflowInputError('grids.crs must be a string, e.g. crs = "EPSG:32633"')
+    optional = {
+        key: _path(grids[key], f"grids.{key}", base) if key in grids else None
+        for key in ("crust_thickness", "moho_depth")
+    }
+    return {
+        "topography": _path(grids["topography"], "grids.topography", base),
+        **optional,
+        "crs": crs,
+        "reference_thickness": reference,
+    }
+
+
+def _parse_parameters(raw: dict, thickness, viscosity, reference) -> ModelParameters:
+    """``[densities]``, ``[walls]`` and ``[constants]`` with the channel's scalar values."""
+    dens = raw.get("densities", {})
     wall = (0.0, 0.0)
     if "upper_velocity" in raw.get("walls", {}):
         wall = parse_vector(raw["walls"]["upper_velocity"], "walls.upper_velocity", "velocity")
@@ -247,7 +284,7 @@ def scenario_from_dict(
         kw["gravity"] = parse_quantity(
             raw["constants"]["gravity"], "constants.gravity", "acceleration"
         )
-    params = ModelParameters(
+    return ModelParameters(
         channel_thickness=thickness,
         viscosity=viscosity,
         wall_east=wall[0],
@@ -255,11 +292,12 @@ def scenario_from_dict(
         reference_thickness=reference,
         **kw,
     )
-    output = raw.get("output", {})
+
+
+def _parse_output(output: dict) -> dict:
+    """``[output]``: the variables and formats to write."""
     variables = output.get("variables")
     if variables is not None:
-        from crustflow.variables import VARIABLES
-
         if not isinstance(variables, list) or not all(isinstance(v, str) for v in variables):
             raise CrustflowInputError(
                 'output.variables must be a list of names, e.g. ["flux_east"]'
@@ -276,47 +314,26 @@ def scenario_from_dict(
     for name in formats:
         if name not in FORMATS:
             raise _unknown_key(name, list(FORMATS), "output.formats")
-    crs = grids.get("crs")
-    if crs is not None and not isinstance(crs, str):
-        raise CrustflowInputError('grids.crs must be a string, e.g. crs = "EPSG:32633"')
-    title = raw.get("title", source.stem if source else "crustflow scenario")
-    if not isinstance(title, str):
-        raise CrustflowInputError('title must be a string in quotes, e.g. title = "My plateau"')
-    budgets = raw.get("budgets", {})
-    sections = (
-        _path(budgets["sections"], "budgets.sections", base) if "sections" in budgets else None
-    )
-    regions = _path(budgets["regions"], "budgets.regions", base) if "regions" in budgets else None
-    ensemble = None
-    if "ensemble" in raw:
-        if not isinstance(raw["ensemble"], dict):
-            raise CrustflowInputError(
-                "[ensemble] must be a table with members, seed and [ensemble.vary]"
-            )
-        ensemble = parse_ensemble(raw["ensemble"], params)
-    return Scenario(
-        ensemble=ensemble,
-        load=load_setup,
-        channel=channel_setup,
-        sections=sections,
-        regions=regions,
-        title=title,
-        topography=_path(grids["topography"], "grids.topography", base),
-        crust_thickness=(
-            _path(grids["crust_thickness"], "grids.crust_thickness", base)
-            if "crust_thickness" in grids
-            else None
-        ),
-        moho_depth=_path(grids["moho_depth"], "grids.moho_depth", base)
-        if "moho_depth" in grids
-        else None,
-        crs=crs,
-        parameters=params,
-        variables=variables,
-        formats=tuple(dict.fromkeys(formats)),
-        source=source,
-        written=raw,
-    )
+    return {"variables": variables, "formats": tuple(dict.fromkeys(formats))}
+
+
+def _parse_budgets(budgets: dict, base: Path) -> dict:
+    """``[budgets]``: the section and region files."""
+    return {
+        key: _path(budgets[key], f"budgets.{key}", base) if key in budgets else None
+        for key in ("sections", "regions")
+    }
+
+
+def _parse_ensemble_table(raw: dict, params: ModelParameters):
+    """``[ensemble]``: the parameter distributions (see :mod:`crustflow.scenario.ensemble`)."""
+    if "ensemble" not in raw:
+        return None
+    if not isinstance(raw["ensemble"], dict):
+        raise CrustflowInputError(
+            "[ensemble] must be a table with members, seed and [ensemble.vary]"
+        )
+    return parse_ensemble(raw["ensemble"], params)
 
 
 def load_scenario(path: str | Path) -> Scenario:
