@@ -81,7 +81,7 @@ def _run(
     scheduler: str | None = None,
     cog: bool = False,
 ) -> int:
-    from crustflow.io.writers import atomic_folder
+    from crustflow.io.folders import atomic_folder
     from crustflow.scenario.document import load_scenario
 
     began = time.perf_counter()
@@ -142,7 +142,7 @@ def _run_into(
 ) -> dict:
     """Compute and write everything a run asks for into ``tmp``; return the run's result."""
     from crustflow.engine.strips import run_strips
-    from crustflow.io.writers import base_manifest, write_manifest
+    from crustflow.io.folders import base_manifest, write_manifest
 
     result = run_strips(
         scenario,
@@ -280,10 +280,10 @@ def _summary(result: dict) -> None:
 
 
 def _check(scenario_path: Path) -> int:
-    from crustflow.engine.fields import ThinCrustCheck, crust_thickness_of
+    from crustflow.engine.checks import CellInputCheck, GridChecks, ThinCrustCheck
+    from crustflow.engine.fields import crust_thickness_of
     from crustflow.engine.strips import strip_rows_for
-    from crustflow.io.grids import GridChecks, close_sources, open_sources
-    from crustflow.scenario.channel import CellInputCheck
+    from crustflow.io.grids import close_sources, open_sources
     from crustflow.scenario.document import load_scenario
 
     scenario = load_scenario(scenario_path)
@@ -343,7 +343,7 @@ def _budget(scenario_path: Path, sections, regions, run_dir: Path, out: Path, qu
     import dataclasses
 
     from crustflow.engine.strips import BUDGET_VARIABLES, run_strips
-    from crustflow.io.writers import atomic_folder, base_manifest, write_manifest
+    from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
     from crustflow.scenario.document import load_scenario
 
     scenario = load_scenario(scenario_path)
@@ -410,7 +410,7 @@ def _same_run(run_dir: Path, scenario, needed) -> bool:
 
 def _profile(scenario_path: Path, at, points, crs, out: Path, quiet: bool) -> int:
     from crustflow.analyses.profiles import read_points, velocity_profiles, write_profile_outputs
-    from crustflow.io.writers import atomic_folder, base_manifest, write_manifest
+    from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
     from crustflow.scenario.document import load_scenario
 
     if (at is None) == (points is None):
@@ -452,7 +452,7 @@ def _run_ensemble(scenario, folder: Path, quiet: bool) -> dict:
 
 
 def _ensemble(scenario_path: Path, out: Path, quiet: bool) -> int:
-    from crustflow.io.writers import atomic_folder, base_manifest, write_manifest
+    from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
     from crustflow.scenario.document import load_scenario
 
     scenario = load_scenario(scenario_path)

@@ -32,9 +32,9 @@ from crustflow.analyses.ensemble.run import (
     run_ensemble,
     sample_members,
 )
+from crustflow.engine.api import read_inputs
 from crustflow.engine.fields import crust_thickness_of, fields_si
 from crustflow.geometry.grid import grid_geometry
-from crustflow.io.grids import read_inputs
 from crustflow.variables import VARIABLES, to_practical
 
 UTM = "EPSG:32633"

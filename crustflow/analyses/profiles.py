@@ -162,11 +162,11 @@ def velocity_profiles(scenario, sites, *, samples: int = PROFILE_SAMPLES):
                     wall_north=p.wall_north,
                 )
             else:
+                from crustflow.engine.cells import wall_temperatures
                 from crustflow.physics.flowlaws import (
                     linear_temperature_prefactor,
                     temperature_profile,
                 )
-                from crustflow.scenario.channel import wall_temperatures
 
                 top, base = wall_temperatures(
                     setup, local, elevation=elevation, top_depth=top_depth, thickness=h

@@ -10,15 +10,18 @@ from __future__ import annotations
 import json
 import time
 from collections.abc import Callable
+from dataclasses import dataclass, field
 
 import numpy as np
 import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from crustflow._version import __version__
-from crustflow.engine.fields import ThinCrustCheck, crust_thickness_of, fields_si, whole_grid_load
+from crustflow.engine.checks import GridChecks, ThinCrustCheck
+from crustflow.engine.fields import crust_thickness_of, fields_si, whole_grid_load
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import grid_geometry
+from crustflow.io.grids import as_dataarray, close_sources, open_sources, provenance
 from crustflow.scenario.document import Scenario
 from crustflow.scenario.parameters import ModelParameters
 from crustflow.variables import CAUTION, VARIABLES, Variable, to_practical, variable_attrs
@@ -32,7 +35,6 @@ __all__ = [
     "to_practical",
     "variable_attrs",
     "crust_thickness_of",
-    "ThinCrustCheck",
     "CAUTION",
 ]
 
@@ -127,7 +129,7 @@ def compute_fields(
         grids[key] = np.asarray(other.values, dtype="float64")
     cell_si = {k: grids.pop(k) for k in list(grids) if k not in ("crust_thickness", "moho_depth")}
     T = crust_thickness_of(H, p, **grids)
-    from crustflow.scenario.channel import CellInputCheck
+    from crustflow.engine.checks import CellInputCheck
 
     cell_check = CellInputCheck()
     cell_check.update(cell_si)
@@ -149,7 +151,7 @@ def compute_fields(
         thin_channel=warning,
         diagnostics=diagnostics,
     )
-    from crustflow.scenario.load import ColumnCheck
+    from crustflow.engine.checks import ColumnCheck
 
     column = ColumnCheck()
     column.update(diagnostics.get("roof_bad"), 0)
@@ -192,7 +194,6 @@ def solve(
     xarray.Dataset
         As :func:`compute_fields`, with the scenario title and input provenance in the attributes.
     """
-    from crustflow.io.grids import read_inputs
 
     clock = {"name": None, "start": time.perf_counter()}
     times = timings if timings is not None else {}
@@ -222,3 +223,63 @@ def solve(
     ds.attrs["title"] = scenario.title
     ds.attrs["crustflow_inputs"] = json.dumps(grids.provenance)
     return ds
+
+
+@dataclass
+class InputGrids:
+    """The input grids of one run, aligned on the topography grid.
+
+    Attributes
+    ----------
+    topography : xarray.DataArray
+        Surface elevation, m above sea level.
+    crust_thickness : xarray.DataArray or None
+        Surface to Moho, m.
+    moho_depth : xarray.DataArray or None
+        Moho depth below sea level, m.
+    provenance : dict
+        How each grid was read and aligned (for the run manifest).
+    """
+
+    topography: xr.DataArray
+    crust_thickness: xr.DataArray | None = None
+    moho_depth: xr.DataArray | None = None
+    provenance: dict = field(default_factory=dict)
+    cell: dict = field(default_factory=dict)  #: channel parameter grids, in SI
+
+
+def read_inputs(scenario) -> InputGrids:
+    """Read, check and align the grids a :class:`~crustflow.scenario.document.Scenario` names, whole.
+
+    Parameters
+    ----------
+    scenario : Scenario
+
+    Returns
+    -------
+    InputGrids
+        Grids in m on the topography grid.
+
+    Raises
+    ------
+    CrustflowInputError
+        Missing CRS, grids that do not overlap, thickness grids that look like kilometres, ...
+    """
+    sources = open_sources(scenario)
+    try:
+        arrays = {key: src.read() for key, src in sources.items()}
+        checks = GridChecks(sources)
+        checks.update(arrays)
+        checks.finish()
+        out = InputGrids(
+            topography=as_dataarray(arrays["topography"], sources["topography"], "topography"),
+            provenance=provenance(sources),
+        )
+        for key in ("crust_thickness", "moho_depth"):
+            if key in arrays:
+                setattr(out, key, as_dataarray(arrays[key], sources["topography"], key))
+        for key, grid in {**scenario.channel.grids, **scenario.load.grids}.items():
+            out.cell[key] = as_dataarray(grid.to_si(arrays[key]), sources["topography"], key)
+        return out
+    finally:
+        close_sources(sources)

@@ -12,11 +12,12 @@ import dataclasses
 
 import numpy as np
 
+from crustflow.engine.cells import solve_cells
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import azimuth, divergence
 from crustflow.physics import isostasy as load
 from crustflow.physics.channel import ChannelSolution
-from crustflow.scenario.channel import ChannelSetup, solve_cells
+from crustflow.scenario.channel import ChannelSetup
 from crustflow.scenario.parameters import ModelParameters
 from crustflow.variables import VARIABLES
 
@@ -24,7 +25,6 @@ __all__ = [
     "fields_si",
     "column_si",
     "crust_thickness_of",
-    "ThinCrustCheck",
     "CELL_EXTRAS",
     "whole_grid_load",
 ]
@@ -55,33 +55,6 @@ def crust_thickness_of(
     )
 
 
-class ThinCrustCheck:
-    """Counts cells where the channel is not thinner than the crust; :meth:`finish` raises."""
-
-    def __init__(self, channel_thickness: float | None) -> None:
-        self.h, self.cells, self.thinnest = channel_thickness, 0, np.inf
-
-    def update(self, crust_thickness: np.ndarray, channel_thickness=None) -> None:
-        """Add a strip of crustal thickness values (and channel thickness, if a grid), m."""
-        h = self.h if channel_thickness is None else channel_thickness
-        if h is None:  # channel placed by depths: cells are flagged, not refused
-            return
-        with np.errstate(invalid="ignore"):
-            bad = np.isfinite(crust_thickness) & (crust_thickness <= h)
-        self.cells += int(bad.sum())
-        finite = crust_thickness[np.isfinite(crust_thickness)]
-        if finite.size:
-            self.thinnest = min(self.thinnest, float(finite.min()))
-
-    def finish(self) -> None:
-        """Raise :class:`CrustflowInputError` if any cell failed."""
-        if self.cells:
-            what = f"({self.h / 1e3:g} km) " if self.h is not None else "(grid) "
-            raise CrustflowInputError(
-                f"channel.thickness {what}is not less than the crustal thickness in "
-                f"{self.cells} cells (thinnest crust {self.thinnest / 1e3:.3g} km); give a thinner "
-                "channel or check the thickness grid"
-            )
 
 
 def column_si(

@@ -17,18 +17,11 @@ from pathlib import Path
 
 import numpy as np
 
-from crustflow.engine.fields import (
-    CELL_EXTRAS,
-    ThinCrustCheck,
-    crust_thickness_of,
-    fields_si,
-    whole_grid_load,
-)
+from crustflow.engine.checks import CellInputCheck, ColumnCheck, GridChecks, ThinCrustCheck
+from crustflow.engine.fields import CELL_EXTRAS, crust_thickness_of, fields_si, whole_grid_load
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import grid_geometry
-from crustflow.io.grids import GridChecks, close_sources, open_sources, provenance
-from crustflow.scenario.channel import CellInputCheck
-from crustflow.scenario.load import ColumnCheck
+from crustflow.io.grids import close_sources, open_sources, provenance
 from crustflow.variables import VARIABLES, to_practical, variable_attrs
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]

@@ -8,7 +8,6 @@ written through rioxarray, and the second grid on exactly the topography grid's 
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -20,39 +19,15 @@ if TYPE_CHECKING:
     import xarray as xr
 
 __all__ = [
-    "InputGrids",
     "GridSource",
-    "GridChecks",
     "open_sources",
     "close_sources",
-    "read_inputs",
     "file_checksum",
     "provenance",
     "as_dataarray",
 ]
 
 
-@dataclass
-class InputGrids:
-    """The input grids of one run, aligned on the topography grid.
-
-    Attributes
-    ----------
-    topography : xarray.DataArray
-        Surface elevation, m above sea level.
-    crust_thickness : xarray.DataArray or None
-        Surface to Moho, m.
-    moho_depth : xarray.DataArray or None
-        Moho depth below sea level, m.
-    provenance : dict
-        How each grid was read and aligned (for the run manifest).
-    """
-
-    topography: xr.DataArray
-    crust_thickness: xr.DataArray | None = None
-    moho_depth: xr.DataArray | None = None
-    provenance: dict = field(default_factory=dict)
-    cell: dict = field(default_factory=dict)  #: channel parameter grids, in SI
 
 
 def file_checksum(path: str | Path) -> str:
@@ -220,46 +195,6 @@ class GridSource:
         self._src.close()
 
 
-class GridChecks:
-    """Value checks on input grids, accumulated strip by strip; :meth:`finish` raises."""
-
-    def __init__(self, sources: dict[str, GridSource]) -> None:
-        self.sources = sources
-        self.count = dict.fromkeys(sources, 0)
-        self.vmin = dict.fromkeys(sources, np.inf)
-        self.vmax = dict.fromkeys(sources, -np.inf)
-
-    def update(self, arrays: dict[str, np.ndarray]) -> None:
-        """Add a strip of rows of each grid."""
-        for key, values in arrays.items():
-            finite = values[np.isfinite(values)]
-            if finite.size:
-                self.count[key] += finite.size
-                self.vmin[key] = min(self.vmin[key], float(finite.min()))
-                self.vmax[key] = max(self.vmax[key], float(finite.max()))
-
-    def finish(self) -> None:
-        """Raise :class:`CrustflowInputError` for the first problem found."""
-        from crustflow import constants
-
-        for key, src in self.sources.items():
-            if self.count[key] == 0:
-                where = "" if key == "topography" else " on the topography grid"
-                raise CrustflowInputError(
-                    f"{src.name}: {src.path} holds no valid cells{where} (all "
-                    "nodata); check the file, its extent or its nodata value"
-                )
-            if key in ("crust_thickness", "moho_depth"):
-                if self.vmax[key] < constants.KILOMETRE_SUSPICION:
-                    raise CrustflowInputError(
-                        f"grids.{key} values look like kilometres (max {self.vmax[key]:.4g}); give "
-                        "the grid in metres (multiply by 1000)"
-                    )
-            if key == "crust_thickness" and self.vmin[key] <= 0:
-                raise CrustflowInputError(
-                    f"grids.crust_thickness has values <= 0 (min {self.vmin[key]:.4g} m); crustal "
-                    "thickness is surface to Moho and must be positive"
-                )
 
 
 def open_sources(scenario) -> dict[str, GridSource]:
@@ -329,38 +264,3 @@ def as_dataarray(values: np.ndarray, source: GridSource, name: str) -> xr.DataAr
     return da
 
 
-def read_inputs(scenario) -> InputGrids:
-    """Read, check and align the grids a :class:`~crustflow.scenario.document.Scenario` names, whole.
-
-    Parameters
-    ----------
-    scenario : Scenario
-
-    Returns
-    -------
-    InputGrids
-        Grids in m on the topography grid.
-
-    Raises
-    ------
-    CrustflowInputError
-        Missing CRS, grids that do not overlap, thickness grids that look like kilometres, ...
-    """
-    sources = open_sources(scenario)
-    try:
-        arrays = {key: src.read() for key, src in sources.items()}
-        checks = GridChecks(sources)
-        checks.update(arrays)
-        checks.finish()
-        out = InputGrids(
-            topography=as_dataarray(arrays["topography"], sources["topography"], "topography"),
-            provenance=provenance(sources),
-        )
-        for key in ("crust_thickness", "moho_depth"):
-            if key in arrays:
-                setattr(out, key, as_dataarray(arrays[key], sources["topography"], key))
-        for key, grid in {**scenario.channel.grids, **scenario.load.grids}.items():
-            out.cell[key] = as_dataarray(grid.to_si(arrays[key]), sources["topography"], key)
-        return out
-    finally:
-        close_sources(sources)

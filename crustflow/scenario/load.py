@@ -12,13 +12,11 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
 from crustflow.errors import CrustflowInputError
 from crustflow.scenario.channel import _grid_or_value
 from crustflow.units import parse_quantity
 
-__all__ = ["LoadSetup", "parse_load", "LOAD_KEYS", "ColumnCheck"]
+__all__ = ["LoadSetup", "parse_load", "LOAD_KEYS"]
 
 #: Keys of the [load] table.
 LOAD_KEYS = (
@@ -225,22 +223,3 @@ def parse_load(raw: dict, channel: dict, base: Path) -> LoadSetup:
     )
 
 
-class ColumnCheck:
-    """Counts cells whose roof reaches below the channel top, and cells where the placed channel
-    has no thickness or leaves the crust; :meth:`finish` raises for the former."""
-
-    def __init__(self) -> None:
-        self.roof_cells = 0
-        self.excluded = 0
-
-    def update(self, roof_bad: np.ndarray | None, excluded: int) -> None:
-        if roof_bad is not None:
-            self.roof_cells += int(np.count_nonzero(roof_bad))
-        self.excluded += int(excluded)
-
-    def finish(self) -> None:
-        if self.roof_cells:
-            raise CrustflowInputError(
-                f"the roof layers reach below the channel top in {self.roof_cells} cells; thin the "
-                "roof layers or place the channel deeper (channel.thickness, channel.top_depth)"
-            )

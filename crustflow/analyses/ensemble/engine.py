@@ -97,7 +97,7 @@ def _member_fields(strip: _Strip, parameters, scenario, wanted) -> dict[str, np.
     si = fields_si(strip.H, T, strip.geom, parameters, wanted=set(wanted), **kw)
     roof_bad = diagnostics.get("roof_bad")
     if roof_bad is not None and roof_bad[strip.crop].any():
-        from crustflow.scenario.load import ColumnCheck
+        from crustflow.engine.checks import ColumnCheck
 
         check = ColumnCheck()
         check.update(roof_bad[strip.crop], 0)
@@ -107,12 +107,12 @@ def _member_fields(strip: _Strip, parameters, scenario, wanted) -> dict[str, np.
 
 def _scan(grid: _Grid, rows: int, bar) -> dict:
     """First pass: the input checks of a run and the extremes the thickness check needs."""
-    from crustflow.io.grids import GridChecks
+    from crustflow.engine.checks import GridChecks
 
     checks = GridChecks(grid.sources)
     cells = None
     if grid.cell_grids:
-        from crustflow.scenario.channel import CellInputCheck
+        from crustflow.engine.checks import CellInputCheck
 
         cells = CellInputCheck()
     low = {"H": np.inf, "T": np.inf}
