@@ -409,7 +409,8 @@ def _same_run(run_dir: Path, scenario, needed) -> bool:
 
 
 def _profile(scenario_path: Path, at, points, crs, out: Path, quiet: bool) -> int:
-    from crustflow.analyses.profiles import read_points, velocity_profiles, write_profile_outputs
+    from crustflow.analyses.profiles import velocity_profiles, write_profile_outputs
+    from crustflow.io.features import read_points
     from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
     from crustflow.scenario.document import load_scenario
 

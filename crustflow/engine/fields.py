@@ -55,8 +55,6 @@ def crust_thickness_of(
     )
 
 
-
-
 def column_si(
     elevation,
     crust_thickness,

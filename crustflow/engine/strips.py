@@ -1,11 +1,14 @@
 """Strip-wise runs: grids of any size in bounded memory, identical to the whole-grid computation.
 
-The grid is processed in strips of rows. Each strip is read with two halo rows on each inner side
-(one for the driving gradient, one more for the divergence of the flux), computed with the same
-functions as :func:`crustflow.compute_fields`, cropped and written into every output file. Because
-gradients and divergences take the grid spacing from the raster's transform and treat only the true
-grid edges (and nodata) one-sidedly, the result is identical, bit for bit, to the whole-grid result.
-Peak memory is set by the strip size, not the grid size.
+The grid is processed in strips of rows, each read by the one block reader
+(:mod:`crustflow.engine.blocks`: halo rows, SI parameter grids, geometry) and computed with
+:func:`~crustflow.engine.blocks.block_fields`, cropped and written into every output file; the
+result is identical, bit for bit, to the whole-grid result. Peak memory is set by the strip size,
+not the grid size, except for the whole-grid load step (filters, thin-channel flag).
+
+A run is: a :class:`RunPlan` (variables, strip height), the whole-grid pre-step, the loop over
+strips (here or on a dask.distributed cluster), the :class:`_Sinks` that write NetCDF and GeoTIFF
+in a background thread, and the :class:`_Summary` of ranges and counts for the terminal.
 """
 
 from __future__ import annotations
@@ -13,21 +16,20 @@ from __future__ import annotations
 import json
 import sys
 from collections.abc import Callable
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from crustflow.engine.checks import CellInputCheck, ColumnCheck, GridChecks, ThinCrustCheck
-from crustflow.engine.fields import CELL_EXTRAS, crust_thickness_of, fields_si, whole_grid_load
+from crustflow.engine.blocks import HALO_ROWS, BlockReader, WholeGridLoad, block_fields
+from crustflow.engine.checks import InputChecks
+from crustflow.engine.fields import CELL_EXTRAS
 from crustflow.errors import CrustflowInputError
-from crustflow.geometry.grid import grid_geometry
-from crustflow.io.grids import close_sources, open_sources, provenance
-from crustflow.variables import VARIABLES, to_practical, variable_attrs
+from crustflow.io.grids import provenance
+from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
+from crustflow.variables import CAUTION, VARIABLES, to_practical, variable_attrs
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
-
-#: Halo rows on each inner side of a strip: 1 for the gradient of the load, 1 for the divergence.
-HALO_ROWS = 2
 
 #: Cells in one strip when only the load, flux and its divergence are computed (peak memory is
 #: roughly 40 float64 arrays of this size); the full one-cell solution (peak speed, drag,
@@ -117,22 +119,36 @@ def run_strips(
         Every check of :func:`crustflow.solve`; nothing in ``folder`` is then complete.
     """
     note = stage or (lambda name: None)
-    folder = Path(folder)
     note("open grids")
     import rasterio
 
     names = list(scenario.variables or VARIABLES)
     cache = _gdal_cache_bytes(len(names) + len(BUDGET_VARIABLES), _width_of(scenario))
-    with rasterio.Env(GDAL_CACHEMAX=cache):
-        return _run_strips(
-            scenario,
-            folder,
-            strip_rows=strip_rows,
-            note=note,
-            progress=progress,
-            budget_fields=budget_fields,
-            client=client,
-            window=max(2, 2 * _workers(client)),
+    with rasterio.Env(GDAL_CACHEMAX=cache), BlockReader(scenario) as reader:
+        plan = plan_run(scenario, reader.height, reader.width, strip_rows, budget_fields)
+        whole = _whole_grid_step(reader, plan, note)
+        with _Sinks(scenario, reader, plan, Path(folder), budget_fields) as sinks:
+            note("compute and write")
+            summary = _Summary(plan, reader)
+            checks = InputChecks(reader.sources, scenario.parameters.channel_thickness)
+            bar = _progress_bar(reader.height, plan.rows, progress)
+            for result in _strip_results(reader, plan, whole, client):
+                bar.update(result["rows"])
+                checks.merge(result["checks"])
+                if checks.failed:
+                    break
+                sinks.put(result["r0"], result["out"])
+                summary.add(result["r0"], result["out"])
+            bar.close()
+            sinks.finish()
+            checks.finish()  # on early exit these stats are partial: enough to name the cause
+        return summary.result(
+            written=sinks.written,
+            provenance=provenance(reader.sources),
+            excluded=checks.column.excluded,
+            whole=whole,
+            budget_fields=sinks.budget_path,
+            title=scenario.title,
         )
 
 
@@ -147,329 +163,283 @@ def _width_of(scenario) -> int:
         return 4096
 
 
-def _run_strips(
-    scenario, folder: Path, *, strip_rows, note, progress, budget_fields, client=None, window=4
-) -> dict:
-    from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
+@dataclass
+class RunPlan:
+    """What a run computes and writes, and in strips of how many rows."""
 
-    sources = open_sources(scenario)
-    writers: list = []
-    writer = None
-    try:
-        topo = sources["topography"]
-        p = scenario.parameters
-        x, y = topo.coords()
-        t = topo.transform
-        height, width = topo.height, topo.width
-        names = list(scenario.variables or VARIABLES)
-        skipped = []
-        if height * width > WHOLE_GRID_CELLS:
-            # Whole-grid steps hold several float64 copies of the grid in memory.
-            if scenario.load.filtered:
-                raise CrustflowInputError(
-                    f"[load] smoothing / elastic_thickness act on the whole grid, and this grid "
-                    f"has {height * width:,} cells (more than {WHOLE_GRID_CELLS:,}); resample the "
-                    "grids coarser for a filtered run, or remove the [load] filters"
-                )
-            if "thin_channel_warning" in names:
-                if scenario.variables:
-                    raise CrustflowInputError(
-                        f"thin_channel_warning needs the whole grid in memory and this grid has "
-                        f"{height * width:,} cells (more than {WHOLE_GRID_CELLS:,}); remove it "
-                        "from [output] variables or resample the grids coarser"
-                    )
-                names.remove("thin_channel_warning")
-                skipped.append("thin_channel_warning")
-        figure_vars = ["flux_magnitude", "flux_east", "flux_north"]
-        make_figure = "figure" in scenario.formats
-        wanted = set(names) | set(figure_vars if make_figure else [])
-        side = None
-        if budget_fields is not None:
-            wanted |= set(BUDGET_VARIABLES)
-        full = bool(wanted & CELL_EXTRAS)
-        rows = strip_rows or strip_rows_for(width, CELLS_PER_STRIP // (4 if full else 1))
-        # Summary lines for the terminal, from what is computed anyway (no extra work).
-        summary = [n for n in ("flux_magnitude", "thickening_rate", "uplift_rate") if n in wanted]
-        written = []
-        nc = tifs = None
-        if "netcdf" in scenario.formats:
-            attrs = netcdf_attrs(scenario.title, json.dumps(scenario.written), dict(vars(p)))
-            nc = NetcdfWriter(
-                folder / "fields.nc",
-                x,
-                y,
-                topo.crs,
-                t,
-                {n: variable_attrs(n) for n in names},
-                attrs,
-                chunk_rows=rows,
-            )
-            writers.append(nc)
-            written.append("fields.nc")
-        if budget_fields is not None:
-            if nc is not None and set(BUDGET_VARIABLES) <= set(names):
-                side_path = folder / "fields.nc"
-            else:
-                side_path = Path(budget_fields)
-                side = NetcdfWriter(
-                    side_path,
-                    x,
-                    y,
-                    topo.crs,
-                    t,
-                    {n: variable_attrs(n) for n in BUDGET_VARIABLES},
-                    netcdf_attrs(scenario.title, json.dumps(scenario.written), dict(vars(p))),
-                    chunk_rows=rows,
-                )
-                writers.append(side)
-        if "geotiff" in scenario.formats:
-            from crustflow.variables import CAUTION
+    names: list[str]  #: variables written to the files
+    wanted: set[str]  #: variables computed (files, figure, budgets)
+    rows: int  #: rows per strip
+    height: int
+    width: int
+    make_figure: bool
+    filtered: bool  #: the scenario's [load] filters act on the whole grid
+    skipped: list[str] = field(default_factory=list)
+    summary: list[str] = field(default_factory=list)  #: variables whose ranges are reported
 
-            tifs = {}
-            for n in names:
-                tifs[n] = GeotiffWriter(
-                    folder / f"{n}.tif",
-                    crs=topo.crs,
-                    transform=t,
-                    height=height,
-                    width=width,
-                    attrs=dict(variable_attrs(n), caution=CAUTION),
-                )
-                writers.append(tifs[n])
-                written.append(f"{n}.tif")
-        step = max(1, -(-max(height, width) // FIGURE_CELLS))
-        fig_rows = {n: [] for n in figure_vars}
-        ranges = {n: [np.inf, -np.inf] for n in summary}
-        counts = {"backflow": 0, "valid": 0, "unconverged": 0}
-        checks = GridChecks(sources)
-        thin = ThinCrustCheck(p.channel_thickness)
-        cell_check = CellInputCheck()
-        note("compute and write")
-        from tqdm import tqdm
+    @property
+    def starts(self) -> range:
+        return range(0, self.height, self.rows)
 
-        def write(r0: int, out: dict) -> None:
-            if nc is not None:
-                nc.write_rows(r0, {n: out[n] for n in names})
-            if side is not None:
-                side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
-            if tifs is not None:
-                for n in names:
-                    tifs[n].write_rows(r0, out[n])
 
-        writer = _BackgroundWriter(write)
-        bar = tqdm(
-            total=height,
-            unit=" rows",
-            desc="crustflow",
-            leave=False,
-            file=sys.stderr,
-            disable=not progress or height <= rows,
-            dynamic_ncols=True,
+def plan_run(scenario, height: int, width: int, strip_rows=None, budget_fields=None) -> RunPlan:
+    """The variables a run computes and writes and its strip height; refuses whole-grid steps
+    on grids larger than :data:`WHOLE_GRID_CELLS`."""
+    names = list(scenario.variables or VARIABLES)
+    skipped = []
+    if height * width > WHOLE_GRID_CELLS:
+        _refuse_whole_grid_steps(scenario, height * width)
+        if "thin_channel_warning" in names:
+            names.remove("thin_channel_warning")
+            skipped.append("thin_channel_warning")
+    make_figure = "figure" in scenario.formats
+    wanted = set(names) | set(FIGURE_VARIABLES if make_figure else ())
+    if budget_fields is not None:
+        wanted |= set(BUDGET_VARIABLES)
+    full = bool(wanted & CELL_EXTRAS)
+    rows = strip_rows or strip_rows_for(width, CELLS_PER_STRIP // (4 if full else 1))
+    summary = [n for n in ("flux_magnitude", "thickening_rate", "uplift_rate") if n in wanted]
+    return RunPlan(
+        names, wanted, rows, height, width, make_figure, scenario.load.filtered, skipped, summary
+    )
+
+
+def _refuse_whole_grid_steps(scenario, cells: int) -> None:
+    # Whole-grid steps hold several float64 copies of the grid in memory.
+    if scenario.load.filtered:
+        raise CrustflowInputError(
+            f"[load] smoothing / elastic_thickness act on the whole grid, and this grid "
+            f"has {cells:,} cells (more than {WHOLE_GRID_CELLS:,}); resample the "
+            "grids coarser for a filtered run, or remove the [load] filters"
         )
-        ls = scenario.load
-        whole_p = whole_warning = None
-        if ls.filtered or "thin_channel_warning" in wanted:
-            note("whole-grid load")
-            full = {key: src.read() for key, src in sources.items()}
-            full_cell = {
-                k: g.to_si(full[k]) for k, g in {**scenario.channel.grids, **ls.grids}.items()
-            }
-            H_full = full["topography"]
-            T_full = crust_thickness_of(
-                H_full,
-                p,
-                crust_thickness=full.get("crust_thickness"),
-                moho_depth=full.get("moho_depth"),
-            )
-            whole_p, whole_warning = whole_grid_load(
-                H_full,
-                T_full,
-                grid_geometry(x, y, topo.crs, spacing=(t.a, t.e)),
-                p,
-                load_setup=ls,
-                cell=full_cell,
-                filtered=ls.filtered,
-                mask="thin_channel_warning" in wanted,
-            )
-            del full, full_cell, H_full, T_full
-            note("compute and write")
-        column = ColumnCheck()
+    if scenario.variables and "thin_channel_warning" in scenario.variables:
+        raise CrustflowInputError(
+            f"thin_channel_warning needs the whole grid in memory and this grid has "
+            f"{cells:,} cells (more than {WHOLE_GRID_CELLS:,}); remove it "
+            "from [output] variables or resample the grids coarser"
+        )
 
-        def merge(result: dict) -> bool:
-            """Fold a strip's checks into the run's; True when the run must stop."""
-            stats = result["stats"]
-            for key, (count, vmin, vmax) in stats["grid"].items():
-                checks.count[key] += count
-                checks.vmin[key] = min(checks.vmin[key], vmin)
-                checks.vmax[key] = max(checks.vmax[key], vmax)
-            for key, (count, example) in stats["cell_bad"].items():
-                old = cell_check.bad.get(key, (0, example))
-                cell_check.bad[key] = (old[0] + count, old[1])
-            thin.cells += stats["thin"][0]
-            thin.thinnest = min(thin.thinnest, stats["thin"][1])
-            column.update(None, stats["excluded"])
-            column.roof_cells += stats["roof"]
-            return bool(thin.cells or cell_check.bad or column.roof_cells)
 
-        def consume(r0: int, out: dict) -> None:
-            writer.put(r0, out)
-            for n in summary:
-                v = out[n][np.isfinite(out[n])]
-                if v.size:
-                    ranges[n] = [
-                        min(ranges[n][0], float(v.min())),
-                        max(ranges[n][1], float(v.max())),
-                    ]
-            if "solver_converged" in out:
-                counts["unconverged"] += int((out["solver_converged"] == 0).sum())
-            if "backflow" in out:
-                counts["backflow"] += int(np.nansum(out["backflow"]))
-                counts["valid"] += int(np.isfinite(out["backflow"]).sum())
-            if make_figure:
-                first = (-r0) % step
-                for n in figure_vars:
-                    fig_rows[n].append(out[n][first::step, step // 2 :: step])
+#: Variables the figure draws.
+FIGURE_VARIABLES = ("flux_magnitude", "flux_east", "flux_north")
 
-        starts = list(range(0, height, rows))
 
-        def job(r0: int) -> tuple:
-            r1 = min(height, r0 + rows)
-            a, b = max(0, r0 - HALO_ROWS), min(height, r1 + HALO_ROWS)
-            return (
-                scenario,
-                r0,
-                r1,
-                wanted,
-                None if whole_p is None else whole_p[a:b],
-                None if whole_warning is None else whole_warning[a:b],
-            )
+def _whole_grid_step(reader: BlockReader, plan: RunPlan, note) -> WholeGridLoad:
+    """The load filters and the thin-channel flag, over the whole grid, before the strips."""
+    thin = "thin_channel_warning" in plan.wanted
+    if not (plan.filtered or thin):
+        return WholeGridLoad()
+    note("whole-grid load")
+    return reader.whole_grid_load(filtered=plan.filtered, thin_channel=thin)
 
-        if client is None:
-            for r0 in starts:
-                result = compute_strip(*job(r0), sources=sources)
-                bar.update(result["rows"])
-                if merge(result):
-                    break
-                consume(r0, result["out"])
-        else:
-            for result in _distributed(client, [job(r0) for r0 in starts], window):
-                bar.update(result["rows"])
-                if merge(result):
-                    break
-                consume(result["r0"], result["out"])
-        bar.close()
-        writer.finish()
-        checks.finish()  # on early exit these stats are partial: enough to name the likely cause
-        cell_check.finish()
-        column.finish()
-        thin.finish()
-        for w in writers:
-            w.close()
-        writers.clear()
-        figure = None
-        if make_figure:
-            figure = _figure_dataset(fig_rows, x, y, step, topo.crs, scenario.title)
-        return {
-            "written": written,
-            "provenance": provenance(sources),
-            "ranges": ranges,
-            "backflow_cells": counts["backflow"] if "backflow" in wanted else None,
-            "valid_cells": counts["valid"],
-            "figure": figure,
-            "unconverged_cells": counts["unconverged"],
-            "excluded_cells": column.excluded,
-            "thin_channel_cells": None if whole_warning is None else int(np.nansum(whole_warning)),
-            "budget_fields": side_path if budget_fields is not None else None,
-            "skipped_variables": skipped,
-            "shape": [height, width],
-            "strip_rows": rows,
-        }
-    finally:
-        if writer is not None:
-            writer.finish(raise_errors=False)
-        for w in writers:
-            w.close()
-        close_sources(sources)
+
+def _progress_bar(height: int, rows: int, progress: bool):
+    from tqdm import tqdm
+
+    return tqdm(
+        total=height,
+        unit=" rows",
+        desc="crustflow",
+        leave=False,
+        file=sys.stderr,
+        disable=not progress or height <= rows,
+        dynamic_ncols=True,
+    )
+
+
+def _strip_results(reader: BlockReader, plan: RunPlan, whole: WholeGridLoad, client):
+    """Each strip's result, in row order: computed here, or on the cluster's workers."""
+    scenario = reader.scenario
+    if client is None:
+        for r0 in plan.starts:
+            r1 = min(plan.height, r0 + plan.rows)
+            yield compute_strip(scenario, r0, r1, plan.wanted, whole, reader=reader)
+        return
+
+    def job(r0: int) -> tuple:
+        r1 = min(plan.height, r0 + plan.rows)
+        part = whole.part(max(0, r0 - HALO_ROWS), min(plan.height, r1 + HALO_ROWS))
+        return (scenario, r0, r1, plan.wanted, part)
+
+    window = max(2, 2 * _workers(client))
+    yield from _distributed(client, [job(r0) for r0 in plan.starts], window)
 
 
 def compute_strip(
-    scenario, r0: int, r1: int, wanted, whole_p=None, whole_warning=None, *, sources=None
+    scenario, r0: int, r1: int, wanted, whole: WholeGridLoad | None = None, *, reader=None
 ) -> dict:
     """Compute rows ``r0:r1`` of a scenario (with halo rows read around them).
 
-    A pure task: it opens the input grids itself unless ``sources`` is given, so it can run in a
-    worker process. Returns the strip's variables in practical units (``out``), the statistics
-    the run's input checks need (``stats``), and ``r0``/``rows``.
+    A pure task: it opens the input grids itself unless a ``reader`` is given, so it can run in a
+    worker process. Returns the strip's variables in practical units, float32 as in the files
+    (``out``; None when a check failed), the state of its input checks (``checks``), ``r0`` and
+    ``rows``.
     """
-    own_sources = sources is None
-    if own_sources:
-        sources = open_sources(scenario)
+    own_reader = reader is None
+    reader = BlockReader(scenario) if own_reader else reader
     try:
-        topo = sources["topography"]
         p = scenario.parameters
-        x, y = topo.coords()
-        t = topo.transform
-        height = topo.height
-        a, b = max(0, r0 - HALO_ROWS), min(height, r1 + HALO_ROWS)
-        own = slice(r0 - a, r1 - a)
-        arrays = {key: src.read(a, b) for key, src in sources.items()}
-        grid_stats = {}
-        for key, values in arrays.items():
-            finite = values[own][np.isfinite(values[own])]
-            grid_stats[key] = (
-                (finite.size, float(finite.min()), float(finite.max()))
-                if finite.size
-                else (0, np.inf, -np.inf)
-            )
-        H = arrays["topography"]
-        T = crust_thickness_of(
-            H, p, crust_thickness=arrays.get("crust_thickness"), moho_depth=arrays.get("moho_depth")
+        block = reader.read(r0, r1)
+        checks = InputChecks(reader.sources, p.channel_thickness)
+        thickness = block.crust_thickness(p)
+        own = block.own
+        checks.update(
+            block.own_rows(block.arrays),
+            thickness[own],
+            block.own_rows(block.cell),
+            block.elevation[own],
         )
-        cell = {
-            k: g.to_si(arrays[k])
-            for k, g in {**scenario.channel.grids, **scenario.load.grids}.items()
-        }
-        cell_check = CellInputCheck()
-        cell_check.update({k: v[own] for k, v in cell.items()})
-        thin = ThinCrustCheck(p.channel_thickness)
-        h_cell = cell.get("channel_thickness")
-        thin.update(
-            np.where(np.isfinite(H), T, np.nan)[own], None if h_cell is None else h_cell[own]
-        )
-        stats = {
-            "grid": grid_stats,
-            "cell_bad": dict(cell_check.bad),
-            "thin": (thin.cells, thin.thinnest),
-            "roof": 0,
-            "excluded": 0,
-        }
-        result = {"r0": r0, "rows": r1 - r0, "stats": stats, "out": None}
-        if thin.cells or cell_check.bad:
+        result = {"r0": r0, "rows": r1 - r0, "checks": checks.state(), "out": None}
+        if checks.failed:
             return result
-        geom = grid_geometry(x, y[a:b], topo.crs, spacing=(t.a, t.e))
         diagnostics: dict = {}
-        si = fields_si(
-            H,
-            T,
-            geom,
+        si = block_fields(
+            block,
             p,
+            channel=scenario.channel,
+            load=scenario.load,
             wanted=wanted,
-            setup=scenario.channel,
-            cell=cell,
-            load_setup=scenario.load,
+            whole=whole,
             diagnostics=diagnostics,
-            p_top_filtered=whole_p,
-            thin_channel=whole_warning,
+            crust_thickness=thickness,
         )
-        roof_bad, excluded = diagnostics.get("roof_bad"), diagnostics.get("excluded")
-        stats["roof"] = 0 if roof_bad is None else int(np.count_nonzero(roof_bad[own]))
-        stats["excluded"] = 0 if excluded is None else int(excluded[own].sum())
+        checks.update_column(diagnostics.get("roof_bad"), diagnostics.get("excluded"))
+        result["checks"] = checks.state()
         # float32 here, as in the files: the same numbers whichever process computed them
-        result["out"] = {n: to_practical(n, v[own]).astype("float32") for n, v in si.items()}
+        result["out"] = {n: to_practical(n, v).astype("float32") for n, v in si.items()}
         return result
     finally:
-        if own_sources:
-            close_sources(sources)
+        if own_reader:
+            reader.close()
+
+
+class _Sinks:
+    """The run's output files (NetCDF, GeoTIFF, the budgets' side file), written in a background
+    thread strip by strip; closed on exit, also on errors."""
+
+    def __init__(self, scenario, reader: BlockReader, plan: RunPlan, folder: Path, budget_fields):
+        self.plan, self.written, self._files = plan, [], []
+        self.nc = self.side = self.tifs = None
+        self.budget_path = None
+        self._grid = (reader.x, reader.y, reader.crs, reader.transform)
+        attrs = netcdf_attrs(
+            scenario.title, json.dumps(scenario.written), dict(vars(scenario.parameters))
+        )
+        if "netcdf" in scenario.formats:
+            self.nc = self._netcdf(folder / "fields.nc", plan.names, attrs)
+            self.written.append("fields.nc")
+        if budget_fields is not None:
+            if self.nc is not None and set(BUDGET_VARIABLES) <= set(plan.names):
+                self.budget_path = folder / "fields.nc"
+            else:
+                self.budget_path = Path(budget_fields)
+                self.side = self._netcdf(self.budget_path, BUDGET_VARIABLES, attrs)
+        if "geotiff" in scenario.formats:
+            self.tifs = {n: self._geotiff(folder / f"{n}.tif", n) for n in plan.names}
+            self.written += [f"{n}.tif" for n in plan.names]
+        self._writer = _BackgroundWriter(self._write)
+
+    def _netcdf(self, path: Path, names, attrs) -> NetcdfWriter:
+        x, y, crs, t = self._grid
+        attrs_of = {n: variable_attrs(n) for n in names}
+        writer = NetcdfWriter(path, x, y, crs, t, attrs_of, attrs, chunk_rows=self.plan.rows)
+        self._files.append(writer)
+        return writer
+
+    def _geotiff(self, path: Path, name: str) -> GeotiffWriter:
+        _, _, crs, t = self._grid
+        writer = GeotiffWriter(
+            path,
+            crs=crs,
+            transform=t,
+            height=self.plan.height,
+            width=self.plan.width,
+            attrs=dict(variable_attrs(name), caution=CAUTION),
+        )
+        self._files.append(writer)
+        return writer
+
+    def _write(self, r0: int, out: dict) -> None:
+        if self.nc is not None:
+            self.nc.write_rows(r0, {n: out[n] for n in self.plan.names})
+        if self.side is not None:
+            self.side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
+        for n, tif in (self.tifs or {}).items():
+            tif.write_rows(r0, out[n])
+
+    def put(self, r0: int, out: dict) -> None:
+        """Queue a strip's rows for writing."""
+        self._writer.put(r0, out)
+
+    def finish(self) -> None:
+        """Write what is queued and close every file (raises the writer's error, if any)."""
+        self._writer.finish()
+        self._close()
+
+    def _close(self) -> None:
+        for f in self._files:
+            f.close()
+        self._files.clear()
+
+    def __enter__(self) -> _Sinks:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._writer.finish(raise_errors=False)
+        self._close()
+
+
+class _Summary:
+    """Ranges of the summary variables, cell counts and the decimated figure rows of a run."""
+
+    def __init__(self, plan: RunPlan, reader: BlockReader) -> None:
+        self.plan = plan
+        self.grid = (reader.x, reader.y, reader.crs)
+        self.step = max(1, -(-max(plan.height, plan.width) // FIGURE_CELLS))
+        self.figure_rows = {n: [] for n in FIGURE_VARIABLES}
+        self.ranges = {n: [np.inf, -np.inf] for n in plan.summary}
+        self.counts = {"backflow": 0, "valid": 0, "unconverged": 0}
+
+    def add(self, r0: int, out: dict) -> None:
+        """Fold in a strip's rows."""
+        for n in self.plan.summary:
+            v = out[n][np.isfinite(out[n])]
+            if v.size:
+                low, high = self.ranges[n]
+                self.ranges[n] = [min(low, float(v.min())), max(high, float(v.max()))]
+        if "solver_converged" in out:
+            self.counts["unconverged"] += int((out["solver_converged"] == 0).sum())
+        if "backflow" in out:
+            self.counts["backflow"] += int(np.nansum(out["backflow"]))
+            self.counts["valid"] += int(np.isfinite(out["backflow"]).sum())
+        if self.plan.make_figure:
+            first, step = (-r0) % self.step, self.step
+            for n in FIGURE_VARIABLES:
+                self.figure_rows[n].append(out[n][first::step, step // 2 :: step])
+
+    def result(self, *, written, provenance, excluded, whole, budget_fields, title) -> dict:
+        """The run's summary dict (see :func:`run_strips`)."""
+        plan = self.plan
+        figure = None
+        if plan.make_figure:
+            x, y, crs = self.grid
+            figure = _figure_dataset(self.figure_rows, x, y, self.step, crs, title)
+        thin = whole.thin_channel
+        return {
+            "written": written,
+            "provenance": provenance,
+            "ranges": self.ranges,
+            "backflow_cells": self.counts["backflow"] if "backflow" in plan.wanted else None,
+            "valid_cells": self.counts["valid"],
+            "figure": figure,
+            "unconverged_cells": self.counts["unconverged"],
+            "excluded_cells": excluded,
+            "thin_channel_cells": None if thin is None else int(np.nansum(thin)),
+            "budget_fields": budget_fields,
+            "skipped_variables": plan.skipped,
+            "shape": [plan.height, plan.width],
+            "strip_rows": plan.rows,
+        }
 
 
 def _workers(client) -> int:

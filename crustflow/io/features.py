@@ -44,6 +44,7 @@ __all__ = [
     "FieldGrid",
     "field_grid",
     "read_features",
+    "read_points",
     "checked_features",
     "geodesic_densify",
     "PathPoints",
@@ -612,3 +613,27 @@ def _mean_speed(grid: FieldGrid, magnitude: np.ndarray, sl) -> np.ndarray | None
     if not (math.isfinite(h) and h > 0):
         return None
     return magnitude / h * MM_PER_M  # (m2/yr) / m = m/yr
+
+
+def read_points(path, grid_crs=None) -> list[tuple[str, float, float, object]]:
+    """Sites from a vector file of points: (label, x, y, crs), label from a ``name`` attribute."""
+
+    path = Path(path)
+    if not path.is_file():
+        raise CrustflowInputError(f"points file not found: {path}; check the path")
+    try:
+        frame = gpd.read_file(path)
+    except Exception as exc:  # noqa: BLE001 - any reader failure is a bad file
+        raise CrustflowInputError(
+            f"{path} is not a vector file geopandas can read ({exc})"
+        ) from None
+    if frame.empty:
+        raise CrustflowInputError(f"points file {path} has no features; add at least one point")
+    if frame.crs is None:
+        raise CrustflowInputError(
+            f"points file {path} has no CRS; assign one in your GIS and save it again"
+        )
+    if not (frame.geometry.geom_type == "Point").all():
+        raise CrustflowInputError(f"points file {path} must hold Point features only")
+    names = frame["name"].astype(str) if "name" in frame else frame.index.astype(str)
+    return [(n, g.x, g.y, frame.crs) for n, g in zip(names, frame.geometry, strict=True)]

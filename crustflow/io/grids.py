@@ -28,8 +28,6 @@ __all__ = [
 ]
 
 
-
-
 def file_checksum(path: str | Path) -> str:
     """SHA-256 of a file, as hex text."""
     digest = hashlib.sha256()
@@ -195,8 +193,6 @@ class GridSource:
         self._src.close()
 
 
-
-
 def open_sources(scenario) -> dict[str, GridSource]:
     """Open the grids a scenario names, the second aligned on the topography grid.
 
@@ -262,5 +258,3 @@ def as_dataarray(values: np.ndarray, source: GridSource, name: str) -> xr.DataAr
     da = xr.DataArray(values, dims=("y", "x"), coords={"y": y, "x": x}, name=name)
     da = da.rio.write_crs(source.crs).rio.write_transform(source.transform)
     return da
-
-

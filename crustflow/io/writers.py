@@ -23,10 +23,6 @@ __all__ = [
 ]
 
 
-
-
-
-
 def _file_variables(ds: xr.Dataset, variables) -> list[str]:
     return [v for v in (variables or ds.data_vars) if v in ds.data_vars and v != "spatial_ref"]
 
@@ -282,11 +278,3 @@ def write_geotiff(da: xr.DataArray, path: str | Path, *, crs, transform) -> None
         writer.write_rows(0, np.asarray(da.values))
     finally:
         writer.close()
-
-
-
-
-
-
-
-

@@ -404,9 +404,3 @@ def _check_temperature(value, key: str) -> None:
             f"{key} = {value - 273.15:.6g} degC is outside 0 K to "
             f"{MAX_TEMPERATURE - 273.15:g} degC; check the value and its units"
         )
-
-
-
-
-
-

@@ -221,5 +221,3 @@ def parse_load(raw: dict, channel: dict, base: Path) -> LoadSetup:
         grids=grids,
         **values,
     )
-
-
