@@ -1,0 +1,93 @@
+"""Pieces shared by the commands: stage timing, a dask.distributed client, budgets of a run."""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+from crustflow.errors import CrustflowInputError
+from crustflow.io.grids import close_sources, open_sources
+
+__all__ = ["Stages", "distributed_client", "check_features", "write_budgets"]
+
+log = logging.getLogger("crustflow")
+
+
+class Stages:
+    """Wall time per stage; calls ``announce(name)`` as each stage starts."""
+
+    def __init__(self, announce: Callable[[str], None] | None = None) -> None:
+        self.timings: dict[str, float] = {}
+        self._announce = announce or (lambda name: None)
+        self._current: tuple[str, float] | None = None
+
+    def __call__(self, name: str) -> None:
+        self._close()
+        self._current = (name, time.perf_counter())
+        log.info("stage: %s", name)
+        self._announce(name)
+
+    def finish(self) -> dict[str, float]:
+        """End the last stage; return the timings (s per stage)."""
+        self._close()
+        return self.timings
+
+    def _close(self) -> None:
+        if self._current is not None:
+            name, began = self._current
+            self.timings[name] = self.timings.get(name, 0.0) + time.perf_counter() - began
+            self._current = None
+
+
+def distributed_client(workers: int | None, scheduler: str | None):
+    """A dask.distributed client: a local cluster of ``workers`` processes, or a running
+    scheduler. Returns ``(client, cluster)``, both None when neither is asked for."""
+    if not workers and not scheduler:
+        return None, None
+    from dask.distributed import Client, LocalCluster
+
+    if scheduler:
+        try:
+            return Client(scheduler, timeout="20s"), None
+        except OSError as exc:
+            raise CrustflowInputError(
+                f"--scheduler {scheduler}: no dask scheduler answers there "
+                f"({exc.__class__.__name__}); start one or check the address"
+            ) from None
+    cluster = LocalCluster(
+        n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None
+    )
+    return Client(cluster), cluster
+
+
+def check_features(scenario) -> None:
+    """Read the scenario's section and region files once, so that bad ones fail before any work."""
+    from crustflow.io.features import read_features
+
+    sources = open_sources(scenario)
+    try:
+        crs = sources["topography"].crs
+    finally:
+        close_sources(sources)
+    if scenario.sections is not None:
+        read_features(scenario.sections, "sections", crs)
+    if scenario.regions is not None:
+        read_features(scenario.regions, "regions", crs)
+
+
+def write_budgets(fields_path: Path, folder: Path, scenario):
+    """Budgets, layers and figures of the fields in ``fields_path`` into ``folder``; returns the
+    budget table (pandas) and the files written."""
+    import pandas as pd
+    import xarray as xr
+
+    from crustflow.analyses.budgets import write_budget_outputs
+
+    with xr.open_dataset(fields_path, decode_coords="all") as fields:
+        fields = fields.load()
+    files = write_budget_outputs(
+        fields, folder, sections=scenario.sections, regions=scenario.regions, title=scenario.title
+    )
+    return pd.read_csv(folder / "budgets.csv"), files
