@@ -30,6 +30,7 @@ import shapely
 import xarray as xr
 
 from crustflow.errors import CrustflowInputError
+from crustflow.figures import budgets as budget_plots
 from crustflow.geometry.grid import FULL_TURN, cell_areas
 from crustflow.io.features import (
     KINDS,
@@ -579,7 +580,6 @@ def write_budget_outputs(
     (``metres_per_m2_per_yr``) is an attribute of every arrow and in the layer's description and
     metadata.
     """
-    from crustflow.figures import budgets as budget_plots
 
     grid = field_grid(fields)
     folder = Path(folder)

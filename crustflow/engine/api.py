@@ -17,7 +17,7 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from crustflow._version import __version__
-from crustflow.engine.checks import GridChecks, ThinCrustCheck
+from crustflow.engine.checks import CellInputCheck, ColumnCheck, GridChecks, ThinCrustCheck
 from crustflow.engine.fields import crust_thickness_of, fields_si, whole_grid_load
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import grid_geometry
@@ -129,7 +129,6 @@ def compute_fields(
         grids[key] = np.asarray(other.values, dtype="float64")
     cell_si = {k: grids.pop(k) for k in list(grids) if k not in ("crust_thickness", "moho_depth")}
     T = crust_thickness_of(H, p, **grids)
-    from crustflow.engine.checks import CellInputCheck
 
     cell_check = CellInputCheck()
     cell_check.update(cell_si)
@@ -151,7 +150,6 @@ def compute_fields(
         thin_channel=warning,
         diagnostics=diagnostics,
     )
-    from crustflow.engine.checks import ColumnCheck
 
     column = ColumnCheck()
     column.update(diagnostics.get("roof_bad"), 0)

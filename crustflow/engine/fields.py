@@ -17,6 +17,8 @@ from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import azimuth, divergence
 from crustflow.physics import isostasy as load
 from crustflow.physics.channel import ChannelSolution
+from crustflow.physics.column import channel_geometry, roof_overburden, short_wavelength_mask
+from crustflow.physics.flexure import flexural_filter, gaussian_smoothing
 from crustflow.scenario.channel import ChannelSetup
 from crustflow.scenario.parameters import ModelParameters
 from crustflow.variables import VARIABLES
@@ -79,7 +81,6 @@ def column_si(
     layers or a crust density grid, g times the integral of density from the sea surface down to
     ``z_top`` (crustflow.physics.column.roof_overburden).
     """
-    from crustflow.physics.column import channel_geometry, roof_overburden
 
     p = parameters
     cell = cell or {}
@@ -186,8 +187,6 @@ def whole_grid_load(
     ``drho = rho_mantle - rho_crust`` (compensation at the Moho; Turcotte & Schubert 2002,
     chapter 3). Both act on the whole grid.
     """
-    from crustflow.physics.column import short_wavelength_mask
-    from crustflow.physics.flexure import flexural_filter, gaussian_smoothing
 
     p = parameters
     ls = load_setup

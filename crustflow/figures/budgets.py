@@ -14,6 +14,8 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import shapely
 import xarray as xr
 
+from crustflow.figures.common import add_caution, arrow_stride, magnitude_image, pyplot
+
 __all__ = ["section_figure", "budget_map"]
 
 #: Length of the arrow marking a section's positive side, as a share of the map's wider side.
@@ -36,13 +38,11 @@ LABEL_SIZE = 7
 
 
 def _pyplot():
-    from crustflow.figures.common import pyplot
 
     return pyplot()
 
 
 def _caution(fig, text: str) -> None:
-    from crustflow.figures.common import add_caution
 
     add_caution(fig, text, foot=FOOT_SHARE)
 
@@ -154,7 +154,6 @@ def budget_map(
     Each section carries an arrow at its middle pointing to its positive (right-hand) side and a
     label with its volume flux; each region a label with its net inflow.
     """
-    from crustflow.figures.common import arrow_stride, magnitude_image
 
     plt = _pyplot()
     geographic = bool(fields.rio.crs is not None and fields.rio.crs.is_geographic)

@@ -4,6 +4,8 @@ and the arrow spacing. Colour maps are perceptually uniform (matplotlib's ``civi
 
 from __future__ import annotations
 
+from crustflow.variables import CAUTION
+
 __all__ = ["arrow_stride", "magnitude_image", "pyplot", "add_caution"]
 
 #: Share of the figure's height kept free at the foot for the caution line.
@@ -30,7 +32,6 @@ def pyplot():
 
 def add_caution(fig, text: str = "", *, foot: float = FOOT_SHARE) -> None:
     """Reserve the figure's foot and write ``text`` followed by the model caution there."""
-    from crustflow.variables import CAUTION
 
     fig.get_layout_engine().set(rect=(0.0, foot, 1.0, 1.0 - foot))
     fig.text(

@@ -12,6 +12,9 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from crustflow._version import __version__
+from crustflow.variables import CAUTION
+
 if TYPE_CHECKING:
     import xarray as xr
 
@@ -215,8 +218,6 @@ def to_cog(path: str | Path) -> None:
 
 def netcdf_attrs(title: str, scenario_text: str = "", parameters: dict | None = None) -> dict:
     """Global attributes of ``fields.nc``."""
-    from crustflow._version import __version__
-    from crustflow.variables import CAUTION
 
     return {
         "Conventions": "CF-1.8",

@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from crustflow.geometry.grid import gradient
+
 __all__ = [
     "airy_root",
     "crust_thickness_airy",
@@ -151,7 +153,6 @@ def driving_gradient(overburden, top_depth, geometry, *, rho_channel: float, gra
     ----------
     Bird, P. (1991), JGR 96(B6), 10275-10286. Clark, M. K. & Royden, L. H. (2000), Geology 28(8), 703-706.
     """
-    from crustflow.geometry.grid import gradient
 
     pe, pn = gradient(overburden, geometry)
     ze, zn = gradient(top_depth, geometry)

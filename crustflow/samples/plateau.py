@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from crustflow.errors import CrustflowInputError
 from crustflow.samples.rasters import SAMPLE_CRS, ramp, write_raster
 from crustflow.samples.wedge import write_wedge_sample
 
@@ -190,7 +191,6 @@ def demo_scenario(name: str = "plateau") -> Path:
     The grids ship in the source tree's ``sample_grids/``; an installation without them regenerates
     identical grids into a cache folder.
     """
-    from crustflow.errors import CrustflowInputError
 
     if name not in SAMPLE_NAMES:
         raise CrustflowInputError(

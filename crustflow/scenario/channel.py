@@ -14,6 +14,8 @@ from pathlib import Path
 import numpy as np
 
 from crustflow.errors import CrustflowInputError
+from crustflow.physics import flowlaws
+from crustflow.physics.flowlaws import MAX_TEMPERATURE
 from crustflow.units import parse_prefactor, parse_quantity, unit_conversion
 
 __all__ = [
@@ -183,7 +185,6 @@ def parse_channel(raw: dict, base: Path) -> tuple[float | None, float | None, Ch
         Scalar values in SI (None where given as a grid or not needed).
     setup : ChannelSetup
     """
-    from crustflow.physics import flowlaws
 
     grids: dict = {}
     rheology = raw.get("rheology", "newtonian")
@@ -397,7 +398,6 @@ def _parse_temperature(table: dict, base: Path, grids: dict):
 
 
 def _check_temperature(value, key: str) -> None:
-    from crustflow.physics.flowlaws import MAX_TEMPERATURE
 
     if value is not None and not 0 < value <= MAX_TEMPERATURE:
         raise CrustflowInputError(

@@ -20,7 +20,10 @@ from crustflow.scenario.ensemble_spec import (
     _Key,
 )
 from crustflow.scenario.parameters import ModelParameters
-from crustflow.units import parse_quantity
+from crustflow.units import (
+    _registry,  # the project's one pint registry (parse_quantity's own)
+    parse_quantity,
+)
 from crustflow.variables import VARIABLES
 
 #: Sampling designs ``[ensemble] sampling`` may name.
@@ -355,8 +358,6 @@ def _parse_threshold(value, key: str, name: str) -> float:
             f"{key} has {value!r} without units; write it as a string with units, e.g. {example}"
         )
     import pint
-
-    from crustflow.units import _registry  # the project's one pint registry (parse_quantity's own)
 
     try:
         quantity = _registry().Quantity(value.strip())

@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from crustflow.errors import CrustflowInputError
+from crustflow.physics.column import PLACEMENTS
 from crustflow.scenario.channel import _grid_or_value
 from crustflow.units import parse_quantity
 
@@ -108,7 +109,6 @@ class LoadSetup:
 def parse_load(raw: dict, channel: dict, base: Path) -> LoadSetup:
     """Parse ``[[roof.layers]]``, ``[densities] crust`` (grid), ``[channel]`` placement keys and
     ``[load]`` from the scenario dict."""
-    from crustflow.physics.column import PLACEMENTS
 
     grids: dict = {}
     layers = []

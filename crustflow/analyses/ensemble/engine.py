@@ -11,123 +11,84 @@ from __future__ import annotations
 
 import numpy as np
 
+from crustflow.analyses.budgets import budget_table, read_features
 from crustflow.analyses.ensemble import report
 from crustflow.analyses.ensemble.fast import _ON_VALID, _block_basis, _Chunk, _Scalars
-from crustflow.engine.fields import crust_thickness_of, fields_si
+from crustflow.engine.blocks import Block, BlockReader, block_fields
+from crustflow.engine.checks import CellInputCheck, ColumnCheck, GridChecks
 from crustflow.errors import CrustflowInputError
-from crustflow.geometry.grid import divergence, grid_geometry
+from crustflow.geometry.grid import divergence
+from crustflow.variables import to_practical
 
 # ----------------------------------------------------------------------------------------------
-# reading strips
+# reading strips: the engine's one block reader
 
 
-class _Strip:
-    def __init__(self, r0, r1, a, arrays, geom, cell) -> None:
-        self.r0, self.r1, self.arrays, self.geom, self.cell = r0, r1, arrays, geom, cell
-        self.crop = slice(r0 - a, r1 - a)
-        self.H = arrays["topography"]
+class _Grid(BlockReader):
+    """The scenario's grids, read strip by strip with halo rows (crustflow.engine.blocks)."""
 
-    def thickness(self, parameters) -> np.ndarray:
-        return crust_thickness_of(
-            self.H,
-            parameters,
-            crust_thickness=self.arrays.get("crust_thickness"),
-            moho_depth=self.arrays.get("moho_depth"),
-        )
+    @property
+    def airy(self) -> bool:
+        return self.scenario.crust_thickness is None and self.scenario.moho_depth is None
+
+    @property
+    def cell_grids(self) -> dict:
+        return self.grids
 
 
-class _Grid:
-    """The scenario's grids, read strip by strip with halo rows (as crustflow.engine.strips does)."""
-
-    def __init__(self, scenario) -> None:
-        from crustflow.io.grids import open_sources
-
-        self.scenario = scenario
-        self.sources = open_sources(scenario)
-        topo = self.sources["topography"]
-        self.x, self.y = topo.coords()
-        self.crs, self.transform = topo.crs, topo.transform
-        self.height, self.width = topo.height, topo.width
-        self.airy = scenario.crust_thickness is None and scenario.moho_depth is None
-        self.cell_grids = {}
-        for setup in (getattr(scenario, "channel", None), getattr(scenario, "load", None)):
-            self.cell_grids.update(getattr(setup, "grids", None) or {})
-
-    def strips(self, rows: int):
-        from crustflow.engine.strips import HALO_ROWS
-
-        t = self.transform
-        for r0 in range(0, self.height, rows):
-            r1 = min(self.height, r0 + rows)
-            a, b = max(0, r0 - HALO_ROWS), min(self.height, r1 + HALO_ROWS)
-            arrays = {key: src.read(a, b) for key, src in self.sources.items()}
-            cell = {k: g.to_si(arrays[k]) for k, g in self.cell_grids.items()}
-            geom = grid_geometry(self.x, self.y[a:b], self.crs, spacing=(t.a, t.e))
-            yield _Strip(r0, r1, a, arrays, geom, cell)
-
-    def close(self) -> None:
-        from crustflow.io.grids import close_sources
-
-        close_sources(self.sources)
-
-
-def _member_fields(strip: _Strip, parameters, scenario, wanted) -> dict[str, np.ndarray]:
-    """fields_si of one member on one strip, cropped to the strip's own rows (the fallback).
+def _member_fields(strip: Block, parameters, scenario, wanted) -> dict[str, np.ndarray]:
+    """The fields of one member on one strip's own rows (the fallback), as the map computes them.
 
     The strip is checked as :mod:`crustflow.engine.strips` checks it: a channel not thinner than the
     crust, and roof layers reaching below the channel top, are errors.
     """
-    T = strip.thickness(parameters)
+    T = strip.crust_thickness(parameters)
     h = strip.cell.get("channel_thickness", parameters.channel_thickness)
     if h is not None:  # None: the channel is placed by depths
         with np.errstate(invalid="ignore"):
-            bad = (np.isfinite(T) & np.isfinite(strip.H) & (T <= h))[strip.crop]
+            bad = (np.isfinite(T) & np.isfinite(strip.elevation) & (T <= h))[strip.own]
         if bad.any():
             raise CrustflowInputError(
                 f"the channel is not thinner than the crust in {int(bad.sum())} cells for an "
                 "ensemble member; narrow channel.thickness (or the densities) in [ensemble.vary]"
             )
-    kw: dict = {"cell": strip.cell}
-    for key, attr in (("setup", "channel"), ("load_setup", "load")):
-        if getattr(scenario, attr, None) is not None:
-            kw[key] = getattr(scenario, attr)
     diagnostics: dict = {}
-    if "load_setup" in kw:
-        kw["diagnostics"] = diagnostics
-    si = fields_si(strip.H, T, strip.geom, parameters, wanted=set(wanted), **kw)
+    si = block_fields(
+        strip,
+        parameters,
+        channel=scenario.channel,
+        load=scenario.load,
+        wanted=set(wanted),
+        diagnostics=diagnostics,
+        crust_thickness=T,
+    )
     roof_bad = diagnostics.get("roof_bad")
-    if roof_bad is not None and roof_bad[strip.crop].any():
-        from crustflow.engine.checks import ColumnCheck
-
+    if roof_bad is not None and roof_bad.any():
         check = ColumnCheck()
-        check.update(roof_bad[strip.crop], 0)
+        check.update(roof_bad, 0)
         check.finish()
-    return {n: si[n][strip.crop] for n in wanted}
+    return {n: si[n] for n in wanted}
 
 
 def _scan(grid: _Grid, rows: int, bar) -> dict:
     """First pass: the input checks of a run and the extremes the thickness check needs."""
-    from crustflow.engine.checks import GridChecks
-
     checks = GridChecks(grid.sources)
     cells = None
     if grid.cell_grids:
-        from crustflow.engine.checks import CellInputCheck
-
         cells = CellInputCheck()
     low = {"H": np.inf, "T": np.inf}
     p = grid.scenario.parameters
-    for strip in grid.strips(rows):
-        crop = {k: v[strip.crop] for k, v in strip.arrays.items()}
+    for strip in grid.blocks(rows):
+        crop = {k: v[strip.own] for k, v in strip.arrays.items()}
         checks.update(crop)
         if cells is not None:
-            cells.update({k: v[strip.crop] for k, v in strip.cell.items()})
+            cells.update({k: v[strip.own] for k, v in strip.cell.items()})
         H = crop["topography"]
         ok = np.isfinite(H)
         if ok.any():
             low["H"] = min(low["H"], float(H[ok].min()))
         if not grid.airy:
-            T = strip.thickness(p)[strip.crop]
+            T = strip.crust_thickness(p)[strip.own]
             ok &= np.isfinite(T)
             if ok.any():
                 low["T"] = min(low["T"], float(T[ok].min()))
@@ -167,10 +128,10 @@ def _check_thickness(members, low: dict, airy: bool, varied: bool) -> None:
 
 def _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, bar) -> None:
     scalars = _Scalars.of(members, grid.airy)
-    for strip in grid.strips(rows):
-        T = None if grid.airy else strip.thickness(grid.scenario.parameters)
-        basis = _block_basis(strip.H, T, strip.geom)
-        flat = {k: v[strip.crop].ravel() for k, v in basis.items()}
+    for strip in grid.blocks(rows):
+        T = None if grid.airy else strip.crust_thickness(grid.scenario.parameters)
+        basis = _block_basis(strip.elevation, T, strip.geometry)
+        flat = {k: v[strip.own].ravel() for k, v in basis.items()}
         cells = np.flatnonzero(flat["valid"])
         reducer.start(flat["valid"].size)
         for c0 in range(0, cells.size, chunk):
@@ -186,7 +147,7 @@ def _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, bar
 
 def _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> None:
     M = len(members)
-    for strip in grid.strips(rows):
+    for strip in grid.blocks(rows):
         n = (strip.r1 - strip.r0) * grid.width
         stacks = {name: np.empty((M, n)) for name in needed}
         for m, p in enumerate(members):
@@ -195,7 +156,7 @@ def _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> 
                 stacks[name][m] = si[name].ravel()
             bar.update(1)
         reducer.start(n)
-        cells = np.flatnonzero(np.isfinite(strip.H[strip.crop]).ravel())
+        cells = np.flatnonzero(np.isfinite(strip.elevation[strip.own]).ravel())
         for c0 in range(0, cells.size, chunk):
             idx = cells[c0 : c0 + chunk]
             for name in needed:
@@ -209,7 +170,6 @@ def _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> 
 
 
 def _read_features(scenario, crs) -> dict:
-    from crustflow.analyses.budgets import read_features
 
     out = {}
     for kind in ("sections", "regions"):
@@ -232,15 +192,15 @@ def _member_budgets(grid, members, features, fast: bool, rows: int, memory: int,
 
         def fields(strip, j, cache):
             if "basis" not in cache:
-                T = None if grid.airy else strip.thickness(grid.scenario.parameters)
-                cache["basis"] = _block_basis(strip.H, T, strip.geom)
+                T = None if grid.airy else strip.crust_thickness(grid.scenario.parameters)
+                cache["basis"] = _block_basis(strip.elevation, T, strip.geometry)
             base = cache["basis"]
             live = base["live"]
             east, north = jobs[j]
             qe = np.where(live, base[east] if east else 0.0, np.nan)
             qn = np.where(live, base[north] if north else 0.0, np.nan)
-            thick = -divergence(qe, qn, strip.geom)
-            return [v[strip.crop] for v in (qe, qn, thick)]
+            thick = -divergence(qe, qn, strip.geometry)
+            return [v[strip.own] for v in (qe, qn, thick)]
 
         n_jobs = len(jobs)
     else:
@@ -265,16 +225,13 @@ def _whole_grid_budgets(grid, n_jobs, fields, features, rows, memory, bar):
     import rioxarray  # noqa: F401  (registers the .rio accessor)
     import xarray as xr
 
-    from crustflow.analyses.budgets import budget_table
-    from crustflow.variables import to_practical
-
     names = ("flux_east", "flux_north", "thickening_rate")
     per_pass = max(1, memory // (8 * len(names) * grid.height * grid.width))
     tables = []
     for j0 in range(0, n_jobs, per_pass):
         jobs = range(j0, min(n_jobs, j0 + per_pass))
         store = np.empty((len(jobs), len(names), grid.height, grid.width))
-        for strip in grid.strips(rows):
+        for strip in grid.blocks(rows):
             cache: dict = {}
             for i, j in enumerate(jobs):
                 for k, values in enumerate(fields(strip, j, cache)):

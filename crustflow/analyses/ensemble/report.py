@@ -29,7 +29,10 @@ from pathlib import Path
 
 import numpy as np
 
+from crustflow.analyses.budgets import POSITIVE_SIDE, safe_name
 from crustflow.analyses.ensemble.stats import Reducer, sorted_percentiles
+from crustflow.figures.common import add_caution, pyplot
+from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
 from crustflow.scenario.ensemble_spec import PERCENTILE_METHOD
 from crustflow.variables import CAUTION, VARIABLES, to_practical
 
@@ -91,7 +94,6 @@ class MapWriter:
     """
 
     def __init__(self, folder, grid, scenario, spec, percentiles, chunk_rows: int) -> None:
-        from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
 
         self.folder, self.spec, self.grid = Path(folder), spec, grid
         self.names = list(spec.variables)
@@ -301,7 +303,6 @@ class MapWriter:
 
 def budget_labels(table) -> list[str]:
     """Column labels of per-member budget totals: ``<kind>_<name>_volume_flux_m3_per_yr``."""
-    from crustflow.analyses.budgets import safe_name
 
     taken: set[str] = set()
     return [
@@ -368,13 +369,11 @@ def write_tables(folder, samples, member_budgets, spec) -> list[str]:
 
 
 def _pyplot():
-    from crustflow.figures.common import pyplot
 
     return pyplot()
 
 
 def _foot(fig, text: str) -> None:
-    from crustflow.figures.common import add_caution
 
     add_caution(fig, text, foot=FOOT_SHARE)
 
@@ -459,7 +458,6 @@ def budget_histograms(
     -------
     Path
     """
-    from crustflow.analyses.budgets import POSITIVE_SIDE
 
     plt = _pyplot()
     n = member_budgets.shape[1]

@@ -61,7 +61,9 @@ from crustflow.analyses.ensemble.fast import (
     fast_fields,
     fast_path_obstacle,
 )
+from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
+from crustflow.io.grids import provenance as grid_provenance
 from crustflow.scenario.ensemble import CIRCULAR as CIRCULAR
 from crustflow.scenario.ensemble import DISTRIBUTIONS, SAMPLING, parse_ensemble
 from crustflow.scenario.ensemble import WHOLE_GRID as WHOLE_GRID
@@ -180,8 +182,6 @@ def run_ensemble(
     """
     from tqdm import tqdm
 
-    from crustflow.io.grids import provenance as grid_provenance
-
     folder = Path(folder)
     timings: dict[str, float] = {}
     clock = [time.perf_counter()]
@@ -218,8 +218,6 @@ def run_ensemble(
     lap("sample members")
     grid = _Grid(scenario)
     try:
-        from crustflow.engine.strips import strip_rows_for
-
         M = spec.members
         names = list(spec.variables)
         needed = (
