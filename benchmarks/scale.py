@@ -436,6 +436,13 @@ class Profile:
 
 
 def _cumulative(stats: pstats.Stats, path_end: str, func: str) -> float:
+    """Cumulative time of ``func`` in the file ending ``path_end``; fails loudly when the timed
+    code has moved (a renamed module or function must be followed here, not silently read as 0)."""
+    root = Path(__file__).resolve().parents[1]
+    module = root / path_end
+    if module.name.endswith(".py") and path_end.startswith("crustflow/"):
+        if not module.is_file() or f"def {func}(" not in module.read_text():
+            raise SystemExit(f"benchmark out of date: {path_end} has no function {func}()")
     total = 0.0
     for (filename, _line, name), (_cc, _nc, _tt, ct, _callers) in stats.stats.items():
         if name == func and filename.replace(os.sep, "/").endswith(path_end):
@@ -483,31 +490,33 @@ def profile_run(case: Case, scenario: Path) -> Profile:
         raise RuntimeError(f"profiled run failed with status {status}")
 
     m = pstats.Stats(main_prof)
-    read = _cumulative(m, "crustflow/grids.py", "read")
-    strip = _cumulative(m, "crustflow/stream.py", "compute_strip")
+    read = _cumulative(m, "crustflow/io/grids.py", "read")
+    strip = _cumulative(m, "crustflow/engine/strips.py", "compute_strip")
     main = {
         "read the scenario (first use of pint and scipy)": _cumulative(
-            m, "crustflow/scenario.py", "load_scenario"
+            m, "crustflow/scenario/document.py", "load_scenario"
         ),
         "read and decompress the inputs (GridSource.read)": read,
         "compute (compute_strip without its reads)": strip - read,
         "wait for the writer thread (queue full, final flush)": _cumulative(
-            m, "crustflow/stream.py", "put"
+            m, "crustflow/engine/strips.py", "put"
         )
-        + _cumulative(m, "crustflow/stream.py", "finish"),
-        "close the GeoTIFFs (last row of tiles)": _cumulative(m, "crustflow/export.py", "close"),
+        + _cumulative(m, "crustflow/engine/strips.py", "finish"),
+        "close the GeoTIFFs (last row of tiles)": _cumulative(
+            m, "crustflow/io/writers.py", "close"
+        ),
         "run.json (input checksums, versions)": _cumulative(
-            m, "crustflow/export.py", "base_manifest"
+            m, "crustflow/io/folders.py", "base_manifest"
         ),
     }
     main["rest (opening grids, output folder, checks)"] = max(0.0, wall - sum(main.values()))
     writer = {"busy": 0.0, "idle": 0.0}
     for prof in thread_profiles:
         w = pstats.Stats(prof)
-        loop = _cumulative(w, "crustflow/stream.py", "_loop")
+        loop = _cumulative(w, "crustflow/engine/strips.py", "_loop")
         if not loop:
             continue
-        writer["busy"] += _cumulative(w, "crustflow/export.py", "write_rows")
+        writer["busy"] += _cumulative(w, "crustflow/io/writers.py", "write_rows")
         writer["idle"] += _cumulative(w, "queue.py", "get")
     compression = compression_probe(out / "flux_east.tif")
     shutil.rmtree(out, ignore_errors=True)  # only the numbers are needed

@@ -137,10 +137,10 @@ def run_strips(
                 checks.merge(result["checks"])
                 if checks.failed:
                     break
-                sinks.put(result["r0"], result["out"])
+                sinks.write_strip(result["r0"], result["out"])
                 summary.add(result["r0"], result["out"])
             bar.close()
-            sinks.finish()
+            sinks.complete()
             checks.finish()  # on early exit these stats are partial: enough to name the cause
         return summary.result(
             written=sinks.written,
@@ -367,11 +367,11 @@ class _Sinks:
         for n, tif in (self.tifs or {}).items():
             tif.write_rows(r0, out[n])
 
-    def put(self, r0: int, out: dict) -> None:
+    def write_strip(self, r0: int, out: dict) -> None:
         """Queue a strip's rows for writing."""
         self._writer.put(r0, out)
 
-    def finish(self) -> None:
+    def complete(self) -> None:
         """Write what is queued and close every file (raises the writer's error, if any)."""
         self._writer.finish()
         self._close()
