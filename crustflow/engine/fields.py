@@ -275,7 +275,7 @@ def fields_si(
     cell = cell or {}
     setup = setup if setup is not None else ChannelSetup()
     col = column_si(elevation, crust_thickness, p, load_setup=load_setup, cell=cell)
-    H, T, z_top, h, valid = col["H"], col["T"], col["z_top"], col["h"], col["valid"]
+    H, z_top, h, valid = col["H"], col["z_top"], col["h"], col["valid"]
     p_top = col["p_top"] if p_top_filtered is None else np.where(valid, p_top_filtered, np.nan)
     for key in ("viscosity", "temperature_top", "temperature_base", "surface_heat_flow"):
         if key in cell:  # a cell without a parameter value depends on nodata
@@ -285,7 +285,7 @@ def fields_si(
     )
     live = valid & np.isfinite(g_east) & np.isfinite(g_north)
     out = {
-        "crust_thickness": T,
+        "crust_thickness": col["T"],
         "channel_top_depth": z_top,
         "overburden_pressure": p_top,
         "drive_east": g_east,
@@ -293,7 +293,6 @@ def fields_si(
     }
     if thin_channel is not None:
         out["thin_channel_warning"] = thin_channel
-    live = live & valid
     out.update(
         solve_cells(
             np.where(live, g_east, np.nan),
@@ -312,38 +311,52 @@ def fields_si(
     out["channel_thickness"] = np.broadcast_to(np.asarray(h, dtype=float), np.shape(H))
     if diagnostics is not None:
         diagnostics.update(roof_bad=col["roof_bad"], excluded=col["excluded"])
+    out.update(_flux_derived(out, H, geometry, p, wanted))
+    return _masked(out, wanted, valid, live, np.shape(H))
+
+
+#: Variables defined wherever the column is (not only where the channel flows).
+_ON_COLUMN = (
+    "crust_thickness",
+    "channel_top_depth",
+    "overburden_pressure",
+    "channel_thickness",
+    "thin_channel_warning",
+)
+
+
+def _flux_derived(out: dict, elevation, geometry, p: ModelParameters, wanted: set) -> dict:
+    """Thickening and uplift rates (finite-volume divergence), flux magnitude and azimuth."""
     q_east, q_north = out["flux_east"], out["flux_north"]
+    derived = {}
     if wanted & {"thickening_rate", "uplift_rate"}:
         thickening = -divergence(q_east, q_north, geometry)
-        out["thickening_rate"] = thickening
-        out["uplift_rate"] = load.uplift_rate(
-            thickening, H, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle, rho_water=p.rho_water
+        derived["thickening_rate"] = thickening
+        derived["uplift_rate"] = load.uplift_rate(
+            thickening,
+            elevation,
+            rho_channel=p.rho_channel,
+            rho_mantle=p.rho_mantle,
+            rho_water=p.rho_water,
         )
     if "flux_magnitude" in wanted:
-        out["flux_magnitude"] = np.hypot(q_east, q_north)
+        derived["flux_magnitude"] = np.hypot(q_east, q_north)
     if "flux_azimuth" in wanted:
-        out["flux_azimuth"] = azimuth(q_east, q_north, geometry)
+        derived["flux_azimuth"] = azimuth(q_east, q_north, geometry)
+    return derived
+
+
+def _masked(out: dict, wanted: set, valid, live, shape) -> dict[str, np.ndarray]:
+    """The wanted variables, in table order, NaN where their cells depend on nodata."""
     result = {}
     for name in VARIABLES:
         if name not in wanted:
             continue
         if name not in out:  # asked for but not computed here (needs the whole grid)
-            result[name] = np.full(np.shape(H), np.nan)
+            result[name] = np.full(shape, np.nan)
             continue
         values = np.asarray(out[name])
         if VARIABLES[name].flag:
             values = values.astype("float64")
-        mask = (
-            valid
-            if name
-            in (
-                "crust_thickness",
-                "channel_top_depth",
-                "overburden_pressure",
-                "channel_thickness",
-                "thin_channel_warning",
-            )
-            else live
-        )
-        result[name] = np.where(mask, values, np.nan)
+        result[name] = np.where(valid if name in _ON_COLUMN else live, values, np.nan)
     return result

@@ -192,42 +192,68 @@ def parse_channel(raw: dict, base: Path) -> tuple[float | None, float | None, Ch
         raise CrustflowInputError(
             f"channel.rheology = {rheology!r} is not one of {', '.join(RHEOLOGIES)}"
         )
+    thickness = _parse_thickness(raw, base, grids)
+    viscosity = _parse_viscosity(raw, rheology, base, grids)
+    n, prefactor, law, strain_rate = _parse_rheology(raw, rheology)
+    t_top, t_base, geotherm = _parse_wall_temperatures(raw, rheology, base, grids)
+    setup = ChannelSetup(
+        rheology=rheology,
+        stress_exponent=n,
+        prefactor=prefactor,
+        law=law,
+        reference_strain_rate=strain_rate,
+        temperature_top=t_top,
+        temperature_base=t_base,
+        geotherm=geotherm,
+        grids=grids,
+    )
+    return thickness, viscosity, setup
+
+
+def _parse_thickness(raw: dict, base: Path, grids: dict) -> float | None:
+    """``thickness``: needed where the channel is the base of the crust, else given by depths."""
     placement = raw.get("placement", "crust-base")
-    thickness = None
-    if placement == "crust-base":
-        if "thickness" not in raw:
+    if placement != "crust-base":
+        if "thickness" in raw:
             raise CrustflowInputError(
-                'the scenario needs [channel] thickness = "15 km" (or a grid)'
+                f"channel.thickness is not used with placement = {placement!r} "
+                "(the depths give it); remove it"
             )
-        thickness = _grid_or_value(
-            raw["thickness"], "channel.thickness", "length", base, "channel_thickness", grids
-        )
-    elif "thickness" in raw:
-        raise CrustflowInputError(
-            f"channel.thickness is not used with placement = {placement!r} "
-            "(the depths give it); remove it"
-        )
-    viscosity = None
-    if rheology == "newtonian":
-        if "viscosity" not in raw:
+        return None
+    if "thickness" not in raw:
+        raise CrustflowInputError('the scenario needs [channel] thickness = "15 km" (or a grid)')
+    return _grid_or_value(
+        raw["thickness"], "channel.thickness", "length", base, "channel_thickness", grids
+    )
+
+
+def _parse_viscosity(raw: dict, rheology: str, base: Path, grids: dict) -> float | None:
+    """``viscosity`` of a newtonian channel (a value or a grid, possibly of log10 values)."""
+    if rheology != "newtonian":
+        if "viscosity" in raw:
             raise CrustflowInputError(
-                'the scenario needs [channel] viscosity = "1e19 Pa*s" (or a '
-                "grid) for a newtonian channel"
+                f"channel.viscosity is for a newtonian channel; a {rheology} "
+                "channel takes its viscosity from its law: remove it"
             )
-        viscosity = _grid_or_value(
-            raw["viscosity"],
-            "channel.viscosity",
-            "viscosity",
-            base,
-            "viscosity",
-            grids,
-            allow_log10=True,
-        )
-    elif "viscosity" in raw:
+        return None
+    if "viscosity" not in raw:
         raise CrustflowInputError(
-            f"channel.viscosity is for a newtonian channel; a {rheology} "
-            "channel takes its viscosity from its law: remove it"
+            'the scenario needs [channel] viscosity = "1e19 Pa*s" (or a '
+            "grid) for a newtonian channel"
         )
+    return _grid_or_value(
+        raw["viscosity"],
+        "channel.viscosity",
+        "viscosity",
+        base,
+        "viscosity",
+        grids,
+        allow_log10=True,
+    )
+
+
+def _parse_rheology(raw: dict, rheology: str):
+    """Stress exponent, prefactor (power law) or flow law and reference strain rate."""
     n = prefactor = law = strain_rate = None
     if rheology == "power-law":
         for key in ("stress_exponent", "prefactor"):
@@ -249,32 +275,25 @@ def parse_channel(raw: dict, base: Path) -> tuple[float | None, float | None, Ch
         n = law.stress_exponent
     elif "flow_law" in raw:
         raise CrustflowInputError('[channel.flow_law] needs channel.rheology = "flow-law"')
-    t_top = t_base = geotherm = None
+    return n, prefactor, law, strain_rate
+
+
+def _parse_wall_temperatures(raw: dict, rheology: str, base: Path, grids: dict):
+    """``[channel.temperature]`` of a flow-law channel: wall temperatures or a geotherm."""
     temperature = raw.get("temperature")
-    if rheology == "flow-law":
-        if not isinstance(temperature, dict):
+    if rheology != "flow-law":
+        if temperature is not None:
             raise CrustflowInputError(
-                "a flow-law channel needs [channel.temperature] with top = "
-                '"550 degC" and base = "750 degC" (or a geotherm)'
+                "[channel.temperature] is used by a flow-law channel only; set "
+                'channel.rheology = "flow-law" or remove it'
             )
-        t_top, t_base, geotherm = _parse_temperature(temperature, base, grids)
-    elif temperature is not None:
+        return None, None, None
+    if not isinstance(temperature, dict):
         raise CrustflowInputError(
-            "[channel.temperature] is used by a flow-law channel only; set "
-            'channel.rheology = "flow-law" or remove it'
+            "a flow-law channel needs [channel.temperature] with top = "
+            '"550 degC" and base = "750 degC" (or a geotherm)'
         )
-    setup = ChannelSetup(
-        rheology=rheology,
-        stress_exponent=n,
-        prefactor=prefactor,
-        law=law,
-        reference_strain_rate=strain_rate,
-        temperature_top=t_top,
-        temperature_base=t_base,
-        geotherm=geotherm,
-        grids=grids,
-    )
-    return thickness, viscosity, setup
+    return _parse_temperature(temperature, base, grids)
 
 
 def _exponent(value, key: str) -> float:

@@ -109,61 +109,74 @@ class LoadSetup:
 def parse_load(raw: dict, channel: dict, base: Path) -> LoadSetup:
     """Parse ``[[roof.layers]]``, ``[densities] crust`` (grid), ``[channel]`` placement keys and
     ``[load]`` from the scenario dict."""
-
     grids: dict = {}
-    layers = []
-    roof = raw.get("roof", {})
-    if roof:
-        if set(roof) - {"layers"} or not isinstance(roof.get("layers"), list):
-            raise CrustflowInputError(
-                "roof layers are written as [[roof.layers]] tables with name, thickness and density"
-            )
-        for i, layer in enumerate(roof["layers"]):
-            if not isinstance(layer, dict):
-                raise CrustflowInputError("each [[roof.layers]] entry must be a table")
-            unknown = set(layer) - {"name", "thickness", "density"}
-            if unknown or "thickness" not in layer or "density" not in layer:
-                raise CrustflowInputError(
-                    f"[[roof.layers]] number {i + 1} needs thickness and density (and a name)"
-                    + (f"; unknown key(s) {sorted(unknown)}" if unknown else "")
-                )
-            name = str(layer.get("name", f"layer {i + 1}"))
-            thickness = _grid_or_value(
-                layer["thickness"],
-                f"roof.layers[{name}].thickness",
-                "length",
-                base,
-                f"roof_thickness_{i}",
-                grids,
-            )
-            density = _grid_or_value(
-                layer["density"],
-                f"roof.layers[{name}].density",
-                "density",
-                base,
-                f"roof_density_{i}",
-                grids,
-            )
-            if thickness is not None and thickness < 0:
-                raise CrustflowInputError(f"roof.layers[{name}].thickness must not be negative")
-            if density is not None and not density > 0:
-                raise CrustflowInputError(f"roof.layers[{name}].density must be positive")
-            layers.append((name, thickness, density))
+    layers = _parse_roof(raw.get("roof", {}), base, grids)
     crust = raw.get("densities", {}).get("crust")
     if isinstance(crust, dict):
         _grid_or_value(crust, "densities.crust", "density", base, "rho_crust", grids)
+    placement, top, base_depth = _parse_placement(channel, base, grids)
+    return LoadSetup(
+        layers=tuple(layers),
+        placement=placement,
+        top_depth=top,
+        base_depth=base_depth,
+        grids=grids,
+        **_parse_filters(raw.get("load", {})),
+    )
+
+
+def _parse_roof(roof: dict, base: Path, grids: dict) -> list[tuple]:
+    """``[[roof.layers]]``: (name, thickness, density) per layer, values in SI or None for grids."""
+    if not roof:
+        return []
+    if set(roof) - {"layers"} or not isinstance(roof.get("layers"), list):
+        raise CrustflowInputError(
+            "roof layers are written as [[roof.layers]] tables with name, thickness and density"
+        )
+    layers = []
+    for i, layer in enumerate(roof["layers"]):
+        if not isinstance(layer, dict):
+            raise CrustflowInputError("each [[roof.layers]] entry must be a table")
+        unknown = set(layer) - {"name", "thickness", "density"}
+        if unknown or "thickness" not in layer or "density" not in layer:
+            raise CrustflowInputError(
+                f"[[roof.layers]] number {i + 1} needs thickness and density (and a name)"
+                + (f"; unknown key(s) {sorted(unknown)}" if unknown else "")
+            )
+        name = str(layer.get("name", f"layer {i + 1}"))
+        where = f"roof.layers[{name}]"
+        thickness = _grid_or_value(
+            layer["thickness"], f"{where}.thickness", "length", base, f"roof_thickness_{i}", grids
+        )
+        density = _grid_or_value(
+            layer["density"], f"{where}.density", "density", base, f"roof_density_{i}", grids
+        )
+        if thickness is not None and thickness < 0:
+            raise CrustflowInputError(f"{where}.thickness must not be negative")
+        if density is not None and not density > 0:
+            raise CrustflowInputError(f"{where}.density must be positive")
+        layers.append((name, thickness, density))
+    return layers
+
+
+#: Depth keys each channel placement needs.
+_PLACEMENT_NEEDS = {
+    "crust-base": (),
+    "depths": ("top_depth", "base_depth"),
+    "fixed-depth": ("top_depth",),
+}
+
+
+def _parse_placement(channel: dict, base: Path, grids: dict):
+    """``[channel] placement``, ``top_depth`` and ``base_depth`` (m, or None for grids)."""
     placement = channel.get("placement", "crust-base")
     if placement not in PLACEMENTS:
         raise CrustflowInputError(
             f"channel.placement = {placement!r} is not one of {', '.join(PLACEMENTS)}"
         )
-    top = base_depth = None
-    needs = {
-        "crust-base": (),
-        "depths": ("top_depth", "base_depth"),
-        "fixed-depth": ("top_depth",),
-    }[placement]
-    for key in ("top_depth", "base_depth"):
+    needs = _PLACEMENT_NEEDS[placement]
+    depths = {"top_depth": None, "base_depth": None}
+    for key in depths:
         if key in channel and key not in needs:
             raise CrustflowInputError(
                 f"channel.{key} is not used with placement = "
@@ -174,28 +187,30 @@ def parse_load(raw: dict, channel: dict, base: Path) -> LoadSetup:
                 f"channel.placement = {placement!r} needs channel.{key}, "
                 f'e.g. {key} = {{ grid = "{key}.tif", units = "km" }}'
             )
-    if "top_depth" in channel:
-        top = _grid_or_value(
-            channel["top_depth"], "channel.top_depth", "length", base, "top_depth", grids
-        )
-    if "base_depth" in channel:
-        base_depth = _grid_or_value(
-            channel["base_depth"], "channel.base_depth", "length", base, "base_depth", grids
-        )
+        if key in channel:
+            depths[key] = _grid_or_value(channel[key], f"channel.{key}", "length", base, key, grids)
+    top, base_depth = depths["top_depth"], depths["base_depth"]
     if top is not None and base_depth is not None and base_depth <= top:
         raise CrustflowInputError(
             "channel.base_depth must be deeper than channel.top_depth (the "
             "channel base lies above its top)"
         )
-    table = raw.get("load", {})
-    kinds = {
-        "smoothing": "length",
-        "elastic_thickness": "length",
-        "youngs_modulus": "pressure",
-        "density_contrast": "density",
-    }
+    return placement, top, base_depth
+
+
+#: Dimensional keys of ``[load]`` and their kinds of unit.
+_FILTER_KINDS = {
+    "smoothing": "length",
+    "elastic_thickness": "length",
+    "youngs_modulus": "pressure",
+    "density_contrast": "density",
+}
+
+
+def _parse_filters(table: dict) -> dict:
+    """``[load]``: smoothing and the thin elastic crust, SI."""
     values = {}
-    for key, kind in kinds.items():
+    for key, kind in _FILTER_KINDS.items():
         if key in table:
             values[key] = parse_quantity(table[key], f"load.{key}", kind)
     if "poissons_ratio" in table:
@@ -213,11 +228,4 @@ def parse_load(raw: dict, channel: dict, base: Path) -> LoadSetup:
             )
     if "youngs_modulus" in values and not values["youngs_modulus"] > 0:
         raise CrustflowInputError("load.youngs_modulus must be positive")
-    return LoadSetup(
-        layers=tuple(layers),
-        placement=placement,
-        top_depth=top,
-        base_depth=base_depth,
-        grids=grids,
-        **values,
-    )
+    return values

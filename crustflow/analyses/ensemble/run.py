@@ -39,8 +39,8 @@ References
 
 from __future__ import annotations
 
-import sys
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 from crustflow.analyses.ensemble import report
@@ -61,6 +61,7 @@ from crustflow.analyses.ensemble.fast import (
     fast_fields,
     fast_path_obstacle,
 )
+from crustflow.engine.progress import Progress
 from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
 from crustflow.io.grids import provenance as grid_provenance
@@ -180,111 +181,48 @@ def run_ensemble(
     :func:`crustflow.engine.fields.fields_si` on each strip; budgets come from ``budget_table`` on each
     member's whole-grid flux.
     """
-    from tqdm import tqdm
-
     folder = Path(folder)
-    timings: dict[str, float] = {}
-    clock = [time.perf_counter()]
-
-    def lap(stage: str) -> None:
-        now = time.perf_counter()
-        timings[stage] = timings.get(stage, 0.0) + now - clock[0]
-        clock[0] = now
-
-    def bar(total, unit, desc):
-        return tqdm(
-            total=total,
-            unit=unit,
-            desc=desc,
-            leave=False,
-            file=sys.stderr,
-            disable=not progress,
-            dynamic_ncols=True,
-            unit_scale=True,
-        )
-
-    load_model = getattr(scenario, "load", None)
-    if getattr(load_model, "filtered", False):
-        raise CrustflowInputError(
-            "ensembles do not support [load] smoothing or elastic_thickness yet (the filtered load "
-            "is a whole-grid computation for every member); remove them from the scenario"
-        )
+    clock = _Clock()
+    fast, obstacle = _choose_path(scenario, spec, fast)
     members, samples = sample_members(spec, scenario.parameters)
-    obstacle = fast_path_obstacle(scenario, spec)
-    if fast is None:
-        fast = obstacle is None
-    elif fast and obstacle:
-        raise CrustflowInputError(f"the fast path does not apply: {obstacle}; leave fast unset")
-    lap("sample members")
+    clock.lap("sample members")
     grid = _Grid(scenario)
     try:
-        M = spec.members
-        names = list(spec.variables)
-        needed = (
-            list(dict.fromkeys(names + [spec.exceedance_variable]))
-            if spec.exceedance_variable
-            else names
-        )
-        full = bool(set(needed) & set(SOLUTION))
-        rows = strip_rows or strip_rows_for(grid.width)
-        with bar(grid.height, " rows", "checking grids") as b:
-            low = _scan(grid, rows, b)
+        plan = _plan(grid, spec, fast, strip_rows, memory_bytes)
+        with Progress(grid.height, unit=" rows", desc="checking grids", bar=progress) as b:
+            low = _scan(grid, plan.check_rows, b)
         features = _read_features(scenario, grid.crs)
         if not grid.cell_grids:
             _check_thickness(members, low, grid.airy, "channel.thickness" in spec.vary)
-        lap("check grids")
-        percentiles = tuple(sorted(set(spec.percentiles) | set(FIGURE_PERCENTILES)))
-        buffers = _Buffers(M)
-        reducer = report.Reducer(
-            names, spec.exceedance_variable, spec.thresholds, percentiles, M, buffers.get
-        )
-        if fast:
-            chunk = max(1, memory_bytes // (8 * M * (FULL_ARRAYS if full else FAST_ARRAYS)))
-        else:
-            rows = strip_rows or max(1, memory_bytes // (8 * M * (len(needed) + 2) * grid.width))
-            chunk = max(1, memory_bytes // (8 * M * 2 * (len(needed) + 2)))
-        writer = report.MapWriter(folder, grid, scenario, spec, percentiles, rows)
-        try:
-            if fast:
-                with bar(grid.height * grid.width, " cells", f"ensemble ({M} members)") as b:
-                    _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, b)
-            else:
-                with bar(
-                    M * -(-grid.height // rows),
-                    " member-strips",
-                    f"ensemble ({M} members, fallback)",
-                ) as b:
-                    _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, b)
-            written = writer.close()
-        except BaseException:
-            writer.abort()
-            raise
-        lap("maps")
+        clock.lap("check grids")
+        writer, reducer = _map_outputs(folder, grid, scenario, spec, plan)
+        written = _maps(grid, members, plan, reducer, writer, progress)
+        clock.lap("maps")
         member_budgets = None
         if features:
-            with bar(None, " fields", "budgets") as b:
+            with Progress(None, unit=" fields", desc="budgets", bar=progress) as b:
                 member_budgets = _member_budgets(
-                    grid, members, features, fast, rows, memory_bytes, b
+                    grid, members, features, fast, plan.rows, memory_bytes, b
                 )
-            lap("budgets")
+            clock.lap("budgets")
         provenance = grid_provenance(grid.sources)
     finally:
         grid.close()
     written += report.write_tables(folder, samples, member_budgets, spec)
-    stats = report.budget_statistics(member_budgets, spec.percentiles, M)
+    stats = report.budget_statistics(member_budgets, spec.percentiles, spec.members)
     if "figure" in scenario.formats:
         written += writer.figures(folder, stats, member_budgets)
-    lap("tables and figures")
+    clock.lap("tables and figures")
     summary = {
         "fast_path": bool(fast),
         "fast_path_obstacle": obstacle,
-        "members": M,
+        "members": spec.members,
         "spec": spec.describe(),
         "percentile_method": PERCENTILE_METHOD,
-        "timings": {k: round(v, 4) for k, v in timings.items()},
+        "timings": {k: round(v, 4) for k, v in clock.timings.items()},
         "shape": [grid.height, grid.width],
-        "strip_rows": rows,
-        "chunk_cells": chunk,
+        "strip_rows": plan.rows,
+        "chunk_cells": plan.chunk,
         "provenance": provenance,
     }
     budget_records = None if member_budgets is None else stats.to_dict(orient="records")
@@ -296,3 +234,107 @@ def run_ensemble(
         budget_statistics=stats if member_budgets is not None else None,
         manifest=dict(summary, outputs=list(written), budget_statistics=budget_records),
     )
+
+
+class _Clock:
+    """Wall time per stage of the run."""
+
+    def __init__(self) -> None:
+        self.timings: dict[str, float] = {}
+        self._last = time.perf_counter()
+
+    def lap(self, stage: str) -> None:
+        now = time.perf_counter()
+        self.timings[stage] = self.timings.get(stage, 0.0) + now - self._last
+        self._last = now
+
+
+def _choose_path(scenario, spec: EnsembleSpec, fast: bool | None) -> tuple[bool, str | None]:
+    """The fast base-map path or the per-member fallback, and what rules the fast path out."""
+    if scenario.load.filtered:
+        raise CrustflowInputError(
+            "ensembles do not support [load] smoothing or elastic_thickness yet (the filtered load "
+            "is a whole-grid computation for every member); remove them from the scenario"
+        )
+    obstacle = fast_path_obstacle(scenario, spec)
+    if fast is None:
+        return obstacle is None, obstacle
+    if fast and obstacle:
+        raise CrustflowInputError(f"the fast path does not apply: {obstacle}; leave fast unset")
+    return fast, obstacle
+
+
+@dataclass(frozen=True)
+class _Plan:
+    fast: bool
+    names: list  #: variables reported
+    needed: list  #: variables computed (reported and the exceedance variable)
+    percentiles: tuple
+    check_rows: int  #: rows per strip of the checking pass
+    rows: int  #: rows per strip of the maps
+    chunk: int  #: cells per member-by-cell chunk
+
+
+def _plan(grid, spec: EnsembleSpec, fast: bool, strip_rows, memory_bytes: int) -> _Plan:
+    """Strip heights and chunk sizes within the memory budget."""
+    M = spec.members
+    names = list(spec.variables)
+    needed = names
+    if spec.exceedance_variable:
+        needed = list(dict.fromkeys(names + [spec.exceedance_variable]))
+    full = bool(set(needed) & set(SOLUTION))
+    rows = check_rows = strip_rows or strip_rows_for(grid.width)
+    if fast:
+        chunk = max(1, memory_bytes // (8 * M * (FULL_ARRAYS if full else FAST_ARRAYS)))
+    else:
+        rows = strip_rows or max(1, memory_bytes // (8 * M * (len(needed) + 2) * grid.width))
+        chunk = max(1, memory_bytes // (8 * M * 2 * (len(needed) + 2)))
+    percentiles = tuple(sorted(set(spec.percentiles) | set(FIGURE_PERCENTILES)))
+    return _Plan(fast, names, needed, percentiles, check_rows, rows, chunk)
+
+
+def _map_outputs(folder: Path, grid, scenario, spec: EnsembleSpec, plan: _Plan):
+    """The map writer (NetCDF, GeoTIFF, figure rows) and the per-cell statistics reducer."""
+    buffers = _Buffers(spec.members)
+    reducer = report.Reducer(
+        plan.names,
+        spec.exceedance_variable,
+        spec.thresholds,
+        plan.percentiles,
+        spec.members,
+        buffers.get,
+    )
+    reducer.buffers = buffers
+    writer = report.MapWriter(folder, grid, scenario, spec, plan.percentiles, plan.rows)
+    return writer, reducer
+
+
+def _maps(grid, members, plan: _Plan, reducer, writer, progress: bool) -> list[str]:
+    """Percentile, spread and exceedance maps, strip by strip; returns the files written."""
+    M = len(members)
+    try:
+        if plan.fast:
+            desc = f"ensemble ({M} members)"
+            with Progress(grid.height * grid.width, unit=" cells", desc=desc, bar=progress) as b:
+                _fast_maps(
+                    grid,
+                    members,
+                    plan.needed,
+                    reducer,
+                    writer,
+                    plan.rows,
+                    plan.chunk,
+                    reducer.buffers,
+                    b,
+                )
+        else:
+            total = M * -(-grid.height // plan.rows)
+            desc = f"ensemble ({M} members, fallback)"
+            with Progress(total, unit=" member-strips", desc=desc, bar=progress) as b:
+                _fallback_maps(
+                    grid, members, plan.needed, reducer, writer, plan.rows, plan.chunk, b
+                )
+        return writer.close()
+    except BaseException:
+        writer.abort()
+        raise
