@@ -6,13 +6,31 @@ from dataclasses import dataclass
 
 from crustflow import constants
 from crustflow.errors import CrustflowInputError
+from crustflow.units import parse_quantity
 
 __all__ = ["ModelParameters"]
+
+#: Attribute -> (scenario key, kind of quantity) for values given as strings with units.
+_KINDS = {
+    "channel_thickness": ("channel.thickness", "length"),
+    "viscosity": ("channel.viscosity", "viscosity"),
+    "rho_crust": ("densities.crust", "density"),
+    "rho_mantle": ("densities.mantle", "density"),
+    "rho_water": ("densities.water", "density"),
+    "rho_channel": ("densities.channel", "density"),
+    "wall_east": ("walls.upper_velocity (east)", "velocity"),
+    "wall_north": ("walls.upper_velocity (north)", "velocity"),
+    "gravity": ("constants.gravity", "acceleration"),
+    "reference_thickness": ("grids.reference_thickness", "length"),
+}
 
 
 @dataclass(frozen=True)
 class ModelParameters:
     """Scalar model parameters, all in SI units.
+
+    Every value may also be given as a string with units, as in a scenario file
+    (``ModelParameters(channel_thickness="15 km", viscosity="1e19 Pa*s")``); it is converted to SI.
 
     Attributes
     ----------
@@ -42,6 +60,10 @@ class ModelParameters:
     reference_thickness: float | None = None
 
     def __post_init__(self) -> None:
+        for name, (key, kind) in _KINDS.items():
+            value = getattr(self, name)
+            if isinstance(value, str):  # "15 km", as in a scenario file
+                object.__setattr__(self, name, parse_quantity(value, key, kind))
         if self.rho_channel is None:
             object.__setattr__(self, "rho_channel", self.rho_crust)
         checks = [
