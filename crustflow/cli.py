@@ -231,7 +231,26 @@ def _do_profile(args) -> int:
 def _do_ensemble(args) -> int:
     result = _command("ensemble").ensemble(args.scenario, args.out, progress=_bar(args))
     _say(f"wrote {result['folder']} in {result['seconds']:.1f} s", args.quiet)
+    if not args.quiet:
+        _print_ensemble_summary(result["summary"])
     return 0
+
+
+def _print_ensemble_summary(summary: dict) -> None:
+    path = "fast base-map path" if summary["fast_path"] else "per-member fallback"
+    print(f"  members          {summary['members']} ({path})")
+    if summary.get("fast_path_obstacle") and not summary["fast_path"]:
+        print(f"  note: {summary['fast_path_obstacle']}")
+    print(f"  variables        {', '.join(summary['spec'].get('variables', []))}")
+    stats = summary.get("budget_statistics")
+    if stats is not None:
+        columns = [c for c in stats.columns if c.endswith("_km3_per_Myr")]
+        heads = [c.removesuffix("_km3_per_Myr") for c in columns]
+        print("  budgets over the members (km3/Myr)")
+        print(f"  {'name':<24} " + " ".join(f"{h:>10}" for h in heads))
+        for row in stats.itertuples(index=False):
+            values = " ".join(f"{getattr(row, c):>10.4g}" for c in columns)
+            print(f"  {str(row.name)[:24]:<24} {values}")
 
 
 def _do_check(args) -> int:
@@ -431,7 +450,7 @@ def _main(argv: list[str] | None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
-    logging.getLogger("crustflow").addHandler(logging.NullHandler())
+    handler = _log_handler(getattr(args, "quiet", False))
     try:
         return _COMMANDS[args.command](args)
     except CrustflowInputError as exc:
@@ -449,6 +468,22 @@ def _main(argv: list[str] | None) -> int:
             file=sys.stderr,
         )
         return 1
+    finally:
+        logging.getLogger("crustflow").removeHandler(handler)
+
+
+def _log_handler(quiet: bool) -> logging.Handler:
+    """Progress as periodic log lines on stderr where no bar is drawn (batch logs, notebooks)."""
+    logger = logging.getLogger("crustflow")
+    if quiet or sys.stderr.isatty():
+        handler: logging.Handler = logging.NullHandler()
+    else:
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setFormatter(logging.Formatter("crustflow: %(message)s"))
+        handler.setLevel(logging.INFO)
+        logger.setLevel(logging.INFO)
+    logger.addHandler(handler)
+    return handler
 
 
 if __name__ == "__main__":  # pragma: no cover

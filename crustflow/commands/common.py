@@ -26,7 +26,7 @@ class Stages:
     def __call__(self, name: str) -> None:
         self._close()
         self._current = (name, time.perf_counter())
-        log.info("stage: %s", name)
+        log.debug("stage: %s", name)
         self._announce(name)
 
     def finish(self) -> dict[str, float]:

@@ -14,7 +14,6 @@ in a background thread, and the :class:`_Summary` of ranges and counts for the t
 from __future__ import annotations
 
 import json
-import sys
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -24,6 +23,7 @@ import numpy as np
 from crustflow.engine.blocks import HALO_ROWS, BlockReader, WholeGridLoad, block_fields
 from crustflow.engine.checks import InputChecks
 from crustflow.engine.fields import CELL_EXTRAS
+from crustflow.engine.progress import Progress
 from crustflow.errors import CrustflowInputError
 from crustflow.io.grids import provenance
 from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
@@ -127,19 +127,22 @@ def run_strips(
     with rasterio.Env(GDAL_CACHEMAX=cache), BlockReader(scenario) as reader:
         plan = plan_run(scenario, reader.height, reader.width, strip_rows, budget_fields)
         whole = _whole_grid_step(reader, plan, note)
-        with _Sinks(scenario, reader, plan, Path(folder), budget_fields) as sinks:
+        bar = Progress(
+            plan.height,
+            unit=" rows",
+            desc="compute and write",
+            bar=progress and plan.height > plan.rows,
+        )
+        with bar, _Sinks(scenario, reader, plan, Path(folder), budget_fields, bar.update) as sinks:
             note("compute and write")
             summary = _Summary(plan, reader)
             checks = InputChecks(reader.sources, scenario.parameters.channel_thickness)
-            bar = _progress_bar(reader.height, plan.rows, progress)
             for result in _strip_results(reader, plan, whole, client):
-                bar.update(result["rows"])
                 checks.merge(result["checks"])
                 if checks.failed:
                     break
                 sinks.write_strip(result["r0"], result["out"])
                 summary.add(result["r0"], result["out"])
-            bar.close()
             sinks.complete()
             checks.finish()  # on early exit these stats are partial: enough to name the cause
         return summary.result(
@@ -233,20 +236,6 @@ def _whole_grid_step(reader: BlockReader, plan: RunPlan, note) -> WholeGridLoad:
     return reader.whole_grid_load(filtered=plan.filtered, thin_channel=thin)
 
 
-def _progress_bar(height: int, rows: int, progress: bool):
-    from tqdm import tqdm
-
-    return tqdm(
-        total=height,
-        unit=" rows",
-        desc="crustflow",
-        leave=False,
-        file=sys.stderr,
-        disable=not progress or height <= rows,
-        dynamic_ncols=True,
-    )
-
-
 def _strip_results(reader: BlockReader, plan: RunPlan, whole: WholeGridLoad, client):
     """Each strip's result, in row order: computed here, or on the cluster's workers."""
     scenario = reader.scenario
@@ -317,8 +306,11 @@ class _Sinks:
     """The run's output files (NetCDF, GeoTIFF, the budgets' side file), written in a background
     thread strip by strip; closed on exit, also on errors."""
 
-    def __init__(self, scenario, reader: BlockReader, plan: RunPlan, folder: Path, budget_fields):
+    def __init__(
+        self, scenario, reader: BlockReader, plan: RunPlan, folder: Path, budget_fields, on_written
+    ):
         self.plan, self.written, self._files = plan, [], []
+        self._on_written = on_written
         self.nc = self.side = self.tifs = None
         self.budget_path = None
         self._grid = (reader.x, reader.y, reader.crs, reader.transform)
@@ -366,6 +358,7 @@ class _Sinks:
             self.side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
         for n, tif in (self.tifs or {}).items():
             tif.write_rows(r0, out[n])
+        self._on_written(next(iter(out.values())).shape[0])  # rows now on disk
 
     def write_strip(self, r0: int, out: dict) -> None:
         """Queue a strip's rows for writing."""
