@@ -123,3 +123,36 @@ def test_no_import_cycles():
 def test_package_root_stays_small():
     root = [p for p in PACKAGE.glob("*.py")]
     assert len(root) <= 12, sorted(p.name for p in root)
+
+
+#: Longest function allowed, in code lines (no blank lines, comments or docstrings). The guide asks
+#: for about 80; this gate stops anything past 100.
+MAX_CODE_LINES = 100
+
+
+def _code_lines(source: str, node) -> int:
+    body = node.body
+    doc = (0, -1)
+    if body and isinstance(body[0], ast.Expr) and isinstance(body[0].value, ast.Constant):
+        if isinstance(body[0].value.value, str):
+            doc = (body[0].lineno, body[0].end_lineno)
+    count = 0
+    for number, line in enumerate(source.splitlines()[node.lineno - 1 : node.end_lineno]):
+        text = line.strip()
+        if text and not text.startswith("#") and not doc[0] <= node.lineno + number <= doc[1]:
+            count += 1
+    return count
+
+
+def test_functions_stay_short():
+    long = []
+    for _name, path in _modules():
+        source = path.read_text()
+        for node in ast.walk(ast.parse(source)):
+            if isinstance(node, ast.FunctionDef | ast.AsyncFunctionDef):
+                lines = _code_lines(source, node)
+                if lines > MAX_CODE_LINES:
+                    long.append(
+                        f"{path.relative_to(PACKAGE.parent)}:{node.lineno} {node.name} {lines}"
+                    )
+    assert not long, "functions over the limit:\n" + "\n".join(long)
