@@ -223,7 +223,10 @@ class _Chunk:
 
     def _linear(self, name: str, slot: str) -> np.ndarray:
         terms = _terms(name, self.s)
-        basis = np.stack([np.nan_to_num(self._column(c), nan=0.0) for c, _ in terms], axis=1)
+        basis = self.columns.get(f"stack:{name}")  # kept with the columns: a fit reuses them
+        if basis is None:
+            basis = np.stack([np.nan_to_num(self._column(c), nan=0.0) for c, _ in terms], axis=1)
+            self.columns[f"stack:{name}"] = basis
         coef = np.stack([np.broadcast_to(v, (self.buf.members,)) for _, v in terms])
         return np.matmul(basis, coef, out=self.buf.get(slot, self.cells))
 
