@@ -408,3 +408,152 @@ def test_api_returns_samples_and_summary(tmp_path):
     assert len(result.samples) == 4 * 30
     with pytest.raises(CrustflowInputError, match="has no \\[fit\\] table"):
         crustflow.fit(base)
+
+
+# ----------------------------------------------------------------------------------------------
+# the command
+
+
+def _plateau(tmp_path):
+    """The invented plateau sample with invented observation points (model values plus noise)."""
+    import shutil
+    from pathlib import Path
+
+    src = Path(__file__).resolve().parents[2] / "sample_grids" / "plateau"
+    folder = tmp_path / "plateau"
+    shutil.copytree(src, folder)
+    base = crustflow.load_scenario(folder / "scenario.toml")
+    x, y, u, _, _ = _sites(base, 25, seed=12)
+    sd = 0.1 * np.abs(u).mean() * np.ones(u.size)
+    d = u + np.random.default_rng(4).normal(0.0, sd)
+    names = [f"invented {i}" for i in range(u.size)] + ["far away"]
+    x, y = np.append(x, 5e6), np.append(y, 5e6)
+    d, sd = np.append(d, d[0]), np.append(sd, sd[0])
+    frame = gpd.GeoDataFrame(
+        {"name": names, "rate": d / MM_YR, "rate_sd": sd / MM_YR, "note": "invented"},
+        geometry=gpd.points_from_xy(x, y),
+        crs=_grid_crs(base.topography),
+    ).to_crs("EPSG:4326")
+    frame.to_file(folder / "uplift_invented.geojson", driver="GeoJSON")
+    text = (folder / "scenario.toml").read_text() + (
+        '\n[fit]\n[[fit.observations]]\nfile = "uplift_invented.geojson"\nvariable = "uplift_rate"\n'
+        'value = "rate"\nsigma = "rate_sd"\nunits = "mm/yr"\n[fit.parameters]\n' + ETA + "\n"
+        "[fit.sampler]\nseed = 11\nwalkers = 8\nsteps = 300\nburn_in = 100\nthin = 2\n"
+        "predictive_draws = 20\n"
+    )
+    (folder / "fit.toml").write_text(text)
+    return folder
+
+
+def _grid_crs(path):
+    import rasterio
+
+    with rasterio.open(path) as src:
+        return src.crs
+
+
+def test_fit_command_end_to_end_on_the_plateau(tmp_path, capsys):
+    import json
+
+    import pint
+    import xarray as xr
+
+    from crustflow.cli import main
+
+    folder = _plateau(tmp_path)
+    out = tmp_path / "fit_out"
+    assert main(["fit", str(folder / "fit.toml"), "--out", str(out)]) == 0
+    captured = capsys.readouterr()
+    assert "dropped observation 'far away': outside the grid" in captured.err
+    assert "fit: 25 observations, 1 sampled values; at the MAP chi-square" in captured.out
+    files = {p.name for p in out.iterdir()}
+    assert {
+        "fit_summary.csv",
+        "posterior.csv",
+        "posterior_predictive.nc",
+        "fit_residuals.gpkg",
+        "fit_residuals.png",
+        "fit_corner.png",
+        "run.json",
+    } <= files
+    import pandas as pd
+
+    summary = pd.read_csv(out / "fit_summary.csv", keep_default_na=False)
+    assert list(summary.columns[:8]) == [
+        "parameter",
+        "units",
+        "map",
+        "median",
+        "p05",
+        "p95",
+        "mean",
+        "sd",
+    ]
+    ureg = pint.UnitRegistry()
+    for units in summary["units"]:
+        ureg.Unit(units)  # every units string parses
+    eta = summary.set_index("parameter").loc["channel.viscosity"]
+    assert eta["p05"] < 1e19 < eta["p95"]  # the invented data were made with 1e19 Pa s
+    samples = pd.read_csv(out / "posterior.csv")
+    assert len(samples) == 8 * 100
+    layer = gpd.read_file(out / "fit_residuals.gpkg", layer="residuals")
+    assert len(layer) == 25 and "far away" not in set(layer["name"])
+    # The posterior-predictive median map (the ensemble's percentile writer over the posterior
+    # draws) equals the site predictions (the fit's forward model over the same draws).
+    with xr.open_dataset(out / "posterior_predictive.nc") as ds:
+        assert list(ds["percentile"].values) == [5.0, 50.0, 95.0]
+        median = ds["uplift_rate"].sel(percentile=50.0).values
+        assert "posterior" in ds.attrs["fit_note"]
+    np.testing.assert_allclose(
+        median[layer["row"], layer["col"]], layer["predicted"], rtol=2e-6, atol=1e-9
+    )
+    manifest = json.loads((out / "run.json").read_text())
+    assert manifest["fit"]["spec"]["sampler"]["seed"] == 11
+    assert manifest["fit"]["fast_path"] is True
+    assert manifest["fit"]["observations_dropped"] == [
+        {"name": "far away", "reason": "outside the grid"}
+    ]
+
+
+def _bad_fit_cases(folder):
+    good = (folder / "fit.toml").read_text()
+    return {
+        "no fit table": (good.split("[fit]")[0], r"the scenario has no \[fit\] table"),
+        "missing file": (
+            good.replace("uplift_invented.geojson", "nothere.gpkg"),
+            r"observations file '.*nothere.gpkg' does not exist",
+        ),
+        "missing attribute": (
+            good.replace('value = "rate"', 'value = "velocity"'),
+            r"has no attribute 'velocity' \(the set's value\)",
+        ),
+        "everything off the grid": (
+            good.replace("uplift_invented.geojson", "far.geojson"),
+            r"no observation lies on the grid \(all 1 are outside it\)",
+        ),
+    }
+
+
+@pytest.mark.parametrize(
+    "case", ["no fit table", "missing file", "missing attribute", "everything off the grid"]
+)
+def test_fit_command_bad_input_exit_2_one_line_nothing_written(tmp_path, capsys, case):
+    import re
+
+    from crustflow.cli import main
+
+    folder = _plateau(tmp_path)
+    gpd.GeoDataFrame(
+        {"name": ["nowhere"], "rate": [1.0], "rate_sd": [0.1]},
+        geometry=gpd.points_from_xy([0.0], [0.0]),
+        crs="EPSG:4326",
+    ).to_file(folder / "far.geojson", driver="GeoJSON")
+    text, message = _bad_fit_cases(folder)[case]
+    (folder / "bad.toml").write_text(text)
+    out = tmp_path / "out"
+    assert main(["fit", str(folder / "bad.toml"), "--out", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1, err
+    assert re.search(message, err), err
+    assert not out.exists()
+    assert not [p for p in tmp_path.iterdir() if ".partial-" in p.name]
