@@ -250,7 +250,7 @@ def test_site_values_and_likelihood_equal_the_full_solve(tmp_path, airy_case):
         reference.append(
             [
                 ds[n].values[r, c] / crustflow.VARIABLES[n].factor
-                for n, r, c in zip(names, rows, cols)
+                for n, r, c in zip(names, rows, cols, strict=True)
             ]
         )
     reference = np.array(reference)
