@@ -164,7 +164,14 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
     ``m_i`` are those of :func:`crustflow.solve` at the observation cells (the same code path).
     """
     spec = _spec_of(scenario)
-    began = time.perf_counter()
+    timings: dict[str, float] = {}
+    clock = [time.perf_counter()]
+
+    def lap(stage: str) -> None:
+        now = time.perf_counter()
+        timings[stage] = round(now - clock[0], 4)
+        clock[0] = now
+
     table = _observations(scenario, spec)
     frame = table.frame
     model = SiteModel(scenario, frame["row"], frame["col"], frame["variable"], fast=fast)
@@ -172,6 +179,7 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
     table.drop(~defined, "on nodata or a grid edge (no model value at its cell)")
     model.keep(defined)
     frame = table.frame
+    lap("observations and base maps")
     if len(frame) == 0:
         names = ", ".join(repr(n) for n, _ in table.dropped[:5])
         raise CrustflowInputError(
@@ -189,13 +197,14 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
         dof=s.degrees_of_freedom,
     )
     chain = run_sampler(posterior, s, progress=progress)
-    seconds = time.perf_counter() - began
+    lap("MAP and sampling")
     samples, summary = _summarise(scenario, prior, chain)
     rng = np.random.Generator(np.random.PCG64(s.seed + 1))
     kept = chain.kept()
     draws = kept[rng.choice(len(kept), size=min(s.predictive_draws, len(kept)), replace=False)]
     observations, chi2, rms = _site_table(frame, posterior, draws, chain.map_theta)
     members = _members(scenario, posterior, draws)
+    lap("summary and site predictions")
     manifest = {
         "spec": spec.describe(),
         "fast_path": model.fast,
@@ -203,7 +212,7 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
         "observations_kept": len(frame),
         "observations_dropped": [{"name": n, "reason": r} for n, r in table.dropped],
         "likelihood_evaluations": posterior.evaluations,
-        "sampling_seconds": round(seconds, 3),
+        "stage_seconds": timings,
         "map_log_posterior": chain.map_log_prob,
         "chi_square_at_map": chi2,
         "rms_normalised_residual_at_map": rms,
@@ -400,6 +409,7 @@ def run_fit(scenario, folder, progress=None) -> dict:
     """
     folder = Path(folder)
     result = fit(scenario, progress=bool(progress))
+    began = time.perf_counter()
     written = []
     summary = result.summary.drop(columns="derived")
     summary.to_csv(folder / "fit_summary.csv", index=False)
@@ -422,6 +432,7 @@ def run_fit(scenario, folder, progress=None) -> dict:
             log=[_logged(n) for n in names],
         )
         written += ["fit_residuals.png", "fit_corner.png"]
+    result.manifest["stage_seconds"]["files"] = round(time.perf_counter() - began, 4)
     manifest = dict(
         result.manifest,
         summary=summary.to_dict(orient="records"),
