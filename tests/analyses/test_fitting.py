@@ -210,6 +210,28 @@ def test_same_seed_same_samples_and_short_chain_is_flagged(tmp_path):
     assert "chain too short" in flags
 
 
+def test_sampling_in_logarithms_keeps_a_uniform_prior_uniform(tmp_path):
+    # A uniform prior on h is sampled in ln h with the Jacobian x (likelihood.Prior); with
+    # uninformative data the samples must follow the prior itself: uniform on [8, 25] km
+    # (Kolmogorov-Smirnov test against scipy.stats.uniform), and a log-uniform eta uniform in ln eta.
+    base = _base(tmp_path)
+    x, y, u, rows, cols = _sites(base, 4, seed=1)
+    _points(tmp_path / "obs.gpkg", x, y, np.ones(4), np.ones(4))
+    priors = (
+        ETA + '\n"channel.thickness" = { distribution = "uniform", low = "8 km", high = "25 km" }'
+    )
+    dims = _scenario(tmp_path, priors, "seed = 1").fit.dimensions()
+    prior = Prior(dims)
+    assert prior.logged == [True, True]
+    model = SiteModel(base, rows, cols, ["uplift_rate"] * 4)
+    post = Posterior(prior, model, u, np.full(4, 1e3 * np.abs(u).max()))  # errors >> signal
+    chain = run_sampler(post, SamplerSettings(seed=2, walkers=16, steps=2000, burn_in=400, thin=10))
+    h, ln_eta = np.exp(chain.kept()[:, 1]), chain.kept()[:, 0]
+    assert stats.kstest(h, stats.uniform(8e3, 17e3).cdf).pvalue > 1e-3
+    lo, hi = math.log(1e18), math.log(1e21)
+    assert stats.kstest(ln_eta, stats.uniform(lo, hi - lo).cdf).pvalue > 1e-3
+
+
 def test_split_rhat_flags_chains_that_disagree():
     # Split R-hat (Gelman et al. 2013, BDA3 section 11.4): ~1 for chains from one distribution,
     # well above 1 for chains centred apart.

@@ -1,11 +1,16 @@
 """The posterior of a fit: priors in their natural sampling space and the error model.
 
-Sampled coordinates ``theta`` are the parameters in the space where their prior is simplest: the
-logarithm of a log-uniform parameter (its prior is flat there), the value itself for uniform and
-normal priors. The posterior density is with respect to ``theta``.
+Sampled coordinates ``theta`` are the logarithms of the parameters whose prior support is positive
+(log-uniform priors, whose density is flat there, and uniform or truncated normal priors with a
+positive lower bound), and the values themselves otherwise (a wall velocity of either sign). The
+posterior density is with respect to ``theta`` (the Jacobian ``dx/dtheta = x`` is included). In
+logarithms the trade-off of channel thickness and viscosity, ``h^3 / eta = const``, is the straight
+line ``3 ln h - ln eta = const``, which an affine-invariant sampler crosses as easily as an
+uncorrelated posterior (Goodman & Weare 2010); in ``h`` itself it is curved and mixes slowly.
 
 References
 ----------
+.. [0] Goodman, J. & Weare, J. (2010). Ensemble samplers with affine invariance. CAMCoS 5(1), 65-80.
 .. [1] Gelman, A., Carlin, J. B., Stern, H. S., Dunson, D. B., Vehtari, A. & Rubin, D. B. (2013).
    *Bayesian Data Analysis*, 3rd ed., CRC Press: sections 2.8 (priors, transformations) and 17.2
    (the Student-t error model for data with outliers).
@@ -32,9 +37,11 @@ class Prior:
 
     Notes
     -----
-    ``theta = ln x`` for a log-uniform prior (density flat in ``theta`` on ``[ln low, ln high]``);
-    ``theta = x`` for a uniform prior (flat on ``[low, high]``) and for a normal prior (density
-    ``exp(-(x - mean)^2 / (2 sd^2))``, zero outside ``[min, max]``). Constant factors are dropped.
+    Prior densities in x: log-uniform ``1/x`` on ``[low, high]``; uniform, flat on ``[low, high]``;
+    normal ``exp(-(x - mean)^2 / (2 sd^2))``, zero outside ``[min, max]``. Where the support is
+    positive the sampling coordinate is ``theta = ln x`` and the density in ``theta`` is the density in
+    x times ``x`` (so a log-uniform prior is flat in ``theta``); elsewhere ``theta = x``. Constant
+    factors are dropped.
     """
 
     def __init__(self, dimensions) -> None:
@@ -49,6 +56,8 @@ class Prior:
             else:
                 lo.append(dist.low)
                 hi.append(dist.high)
+        #: Whether each coordinate is the logarithm of its parameter (a positive support).
+        self.logged = [k == "log-uniform" or low > 0 for k, low in zip(self.kinds, lo, strict=True)]
         self.low = self.to_theta(np.array(lo, dtype=float))
         self.high = self.to_theta(np.array(hi, dtype=float))
 
@@ -60,8 +69,8 @@ class Prior:
     def to_theta(self, x: np.ndarray) -> np.ndarray:
         """SI values (last axis: dimensions) to sampling coordinates."""
         x = np.array(x, dtype=float)
-        for j, kind in enumerate(self.kinds):
-            if kind == "log-uniform":
+        for j, logged in enumerate(self.logged):
+            if logged:
                 with np.errstate(divide="ignore", invalid="ignore"):
                     x[..., j] = np.log(x[..., j])
         return x
@@ -69,8 +78,8 @@ class Prior:
     def to_si(self, theta: np.ndarray) -> np.ndarray:
         """Sampling coordinates (last axis: dimensions) to SI values."""
         x = np.array(theta, dtype=float)
-        for j, kind in enumerate(self.kinds):
-            if kind == "log-uniform":
+        for j, logged in enumerate(self.logged):
+            if logged:
                 x[..., j] = np.exp(x[..., j])
         return x
 
@@ -79,10 +88,13 @@ class Prior:
         theta = np.atleast_2d(theta)
         out = np.zeros(theta.shape[0])
         inside = np.all((theta >= self.low) & (theta <= self.high), axis=1)
+        x = self.to_si(theta)
         for j, d in enumerate(self.dims):
             if self.kinds[j] == "normal":
-                z = (theta[:, j] - d.distribution.mean) / d.distribution.sd
+                z = (x[:, j] - d.distribution.mean) / d.distribution.sd
                 out -= 0.5 * z * z
+            if self.logged[j] and self.kinds[j] != "log-uniform":
+                out += theta[:, j]  # ln |dx/dtheta| = ln x = theta
         return np.where(inside, out, -np.inf)
 
     def quantiles(self, u: np.ndarray) -> np.ndarray:
