@@ -217,7 +217,8 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
         "chi_square_at_map": chi2,
         "rms_normalised_residual_at_map": rms,
         "method": "emcee affine-invariant ensemble sampler (stretch move, a = 2), MAP start from "
-        "scipy.optimize Nelder-Mead; sampling coordinates: ln x for priors with a positive support (Jacobian included)",
+        "scipy.optimize Nelder-Mead; sampling coordinates: ln x for priors with a positive "
+        "support (Jacobian included)",
     }
     return FitResult(
         samples,
