@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from crustflow.errors import CrustflowInputError
+from crustflow.io.grids import GridSource
 
 __all__ = ["ObservationTable", "read_observations", "COLUMNS"]
 
@@ -187,12 +188,10 @@ def _check_sigma(sigma: np.ndarray, names, label: str) -> None:
 
 def _raster(s, topography) -> pd.DataFrame:
     """A raster of observations, aligned on the grid and decimated."""
-    from crustflow.io.grids import GridSource
-
     key = f"observations grid '{s.path.name}'"
-    values = _aligned(GridSource, s.path, key, topography)
+    values = _aligned(s.path, key, topography)
     if s.sigma_grid is not None:
-        sigma = _aligned(GridSource, s.sigma_grid, f"sigma grid '{s.sigma_grid.name}'", topography)
+        sigma = _aligned(s.sigma_grid, f"sigma grid '{s.sigma_grid.name}'", topography)
         sigma = sigma * s.scale
     else:
         sigma = np.full(values.shape, s.sigma)
@@ -223,8 +222,9 @@ def _raster(s, topography) -> pd.DataFrame:
     )
 
 
-def _aligned(source_class, path, key: str, topography) -> np.ndarray:
-    source = source_class(path, key, target=topography)
+def _aligned(path, key: str, topography) -> np.ndarray:
+    """A raster resampled onto the topography grid (bilinear, as a scenario's second grid)."""
+    source = GridSource(path, key, target=topography)
     try:
         return source.read()
     finally:

@@ -28,6 +28,7 @@ from crustflow.analyses.ensemble.fast import (
     _Chunk,
     _Scalars,
 )
+from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
 from crustflow.scenario.parameters import ModelParameters
 
@@ -86,8 +87,6 @@ class SiteModel:
         self.fast = self.obstacle is None if fast is None else bool(fast)
         grid = _Grid(scenario)
         try:
-            from crustflow.engine.strips import strip_rows_for
-
             self.width, self.airy = grid.width, grid.airy
             self.strip_rows = strip_rows_for(grid.width)
             self.lowest = _scan(grid, self.strip_rows, _NoBar())

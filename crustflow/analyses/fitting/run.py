@@ -29,6 +29,7 @@ References
 from __future__ import annotations
 
 import dataclasses
+import logging
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -43,12 +44,16 @@ from crustflow.analyses.ensemble.run import FAST_ARRAYS, MEMORY_BYTES
 from crustflow.analyses.fitting.forward import SiteModel, _NoBar, fit_obstacle
 from crustflow.analyses.fitting.likelihood import Posterior, Prior
 from crustflow.analyses.fitting.sampler import diagnostics, run_sampler
+from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
 from crustflow.figures.fitting import corner_figure, residual_figure
+from crustflow.io.grids import file_checksum
 from crustflow.io.observations import read_observations
 from crustflow.scenario.ensemble_spec import VARIABLE_KEYS
 
 __all__ = ["fit", "run_fit", "FitResult", "SUMMARY_COLUMNS"]
+
+logger = logging.getLogger(__name__)
 
 #: Columns of the summary table (``fit_summary.csv``).
 SUMMARY_COLUMNS = (
@@ -179,6 +184,8 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
     table.drop(~defined, "on nodata or a grid edge (no model value at its cell)")
     model.keep(defined)
     frame = table.frame
+    for name, reason in table.dropped:
+        logger.info("observation %r dropped: %s", name, reason)
     lap("observations and base maps")
     if len(frame) == 0:
         names = ", ".join(repr(n) for n, _ in table.dropped[:5])
@@ -438,7 +445,7 @@ def run_fit(scenario, folder, progress=None) -> dict:
         result.manifest,
         summary=summary.to_dict(orient="records"),
         outputs=list(written),
-        inputs={str(p): {"sha256": _checksum(p)} for p in scenario.fit.input_paths},
+        inputs={str(p): {"sha256": file_checksum(p)} for p in scenario.fit.input_paths},
     )
     return {
         "result": result,
@@ -452,12 +459,6 @@ def _logged(name: str) -> bool:
     return name in ("channel.viscosity", "channel.transmissivity", "channel.flux_coefficient")
 
 
-def _checksum(path) -> str:
-    from crustflow.io.grids import file_checksum
-
-    return file_checksum(path)
-
-
 def _predictive_maps(scenario, members, folder: Path) -> list[str]:
     """``posterior_predictive.nc``: the ensemble's percentile maps over the posterior draws."""
     spec = scenario.fit
@@ -466,8 +467,6 @@ def _predictive_maps(scenario, members, folder: Path) -> list[str]:
     fast = fit_obstacle(scenario, names) is None
     grid = _Grid(scenario)
     try:
-        from crustflow.engine.strips import strip_rows_for
-
         rows = strip_rows_for(grid.width)
         buffers = _Buffers(M)
         reducer = report.Reducer(names, None, (), PREDICTIVE_PERCENTILES, M, buffers.get)
