@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import re
 import subprocess
 import sys
@@ -186,6 +187,8 @@ def section(row: dict, info: dict, command: str) -> str:
         f"Recorded {today} with `{command}`.",
         "",
         "Machine: " + "; ".join(f"{k} {v}" for k, v in info.items()) + ".",
+        f"One-minute load average {row['load'][0]:.1f} before and {row['load'][1]:.1f} after the "
+        "run (2 cores shared with other work: times are longer under load).",
         "",
         *table(row),
         "",
@@ -253,8 +256,11 @@ def main(argv: list[str] | None = None) -> int:
         flush=True,
     )
     began = time.perf_counter()
+    load = os.getloadavg()[0]
     row = run_case(args.size, args.observations, args.walkers, args.steps)
+    row["load"] = (load, os.getloadavg()[0])
     print(f"{row['wall_s']:.1f} s ({time.perf_counter() - began:.1f} s with grid building)")
+    print(f"load average {row['load'][0]:.1f} before, {row['load'][1]:.1f} after")
     print()
     print("\n".join(table(row)))
     print()

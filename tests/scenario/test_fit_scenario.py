@@ -164,6 +164,48 @@ def _bad():
             POINTS.split("[fit.parameters]")[0] + "[fit.sampler]\nseed = 1\n",
             r"\[fit.parameters\] is missing or empty",
         ),
+        "duplicate set names": (
+            swap(
+                "[fit.parameters]",
+                '[[fit.observations]]\nfile = "uplift_points.gpkg"\n'
+                'variable = "uplift_rate"\nvalue = "rate"\nsigma = "rate_sd"\nunits = "mm/yr"\n'
+                "[fit.parameters]",
+            ),
+            r"two \[\[fit.observations\]\] sets are named 'uplift_points'; give each a distinct name",
+        ),
+        "no value attribute": (
+            swap('value = "rate"\n', ""),
+            r'needs value = "..." naming the attribute',
+        ),
+        "no sigma": (swap('sigma = "rate_sd"\n', ""), r'needs sigma = "<attribute>" or a value'),
+        "decimate on points": (
+            swap('units = "mm/yr"', 'units = "mm/yr"\ndecimate = 2'),
+            r"fit.observations\[0\].decimate applies to rasters only; remove it",
+        ),
+        "value on a raster": (
+            swap('file = "uplift_points.gpkg"', 'grid = "u.tif"\ndecimate = 2'),
+            r"fit.observations\[0\].value applies to point files only; remove it",
+        ),
+        "raster sigma attribute": (
+            swap('file = "uplift_points.gpkg"', 'grid = "u.tif"\ndecimate = 2').replace(
+                'value = "rate"\n', ""
+            ),
+            r"fit.observations\[0\].sigma must be \{ grid = \"sd.tif\" \} or a value with units",
+        ),
+        "zero correlation length": (
+            swap('file = "uplift_points.gpkg"', 'grid = "u.tif"\ncorrelation_length = "0 km"')
+            .replace('value = "rate"\n', "")
+            .replace('sigma = "rate_sd"', 'sigma = "0.5 mm/yr"'),
+            r"correlation_length must be positive",
+        ),
+        "bad degrees of freedom": (
+            swap("seed = 11", "seed = 11\ndegrees_of_freedom = 0"),
+            r"degrees_of_freedom = 0 must be a positive number",
+        ),
+        "variables not a list": (
+            swap("[fit]\n", '[fit]\nvariables = "uplift_rate"\n'),
+            r"fit.variables must be a list of names",
+        ),
         "unknown fit key": (
             swap("[fit.sampler]", "[fit.samplr]"),
             r"unknown key 'samplr' in \[fit\]",
@@ -177,3 +219,9 @@ def test_bad_fit_tables_are_one_line_errors(tmp_path, case):
     with pytest.raises(CrustflowInputError, match=message) as info:
         _load(tmp_path, text)
     assert "\n" not in str(info.value)
+
+
+def test_fit_must_be_a_table(tmp_path):
+    (tmp_path / "s.toml").write_text('fit = "yes"\n' + SCENARIO)
+    with pytest.raises(CrustflowInputError, match=r"\[fit\] must be a table"):
+        crustflow.load_scenario(tmp_path / "s.toml")
