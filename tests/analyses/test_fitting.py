@@ -579,3 +579,65 @@ def test_fit_command_bad_input_exit_2_one_line_nothing_written(tmp_path, capsys,
     assert re.search(message, err), err
     assert not out.exists()
     assert not [p for p in tmp_path.iterdir() if ".partial-" in p.name]
+
+
+def _bad_points(folder):
+    """(writer of obs.gpkg, expected message) for each bad observation file."""
+    x, y = [320e3, 330e3], [5150e3, 5140e3]
+
+    def frame(**kw):
+        data = {"name": ["A", "B"], "rate": [1.0, 2.0], "rate_sd": [0.1, 0.1]}
+        data.update(kw.pop("data", {}))
+        return gpd.GeoDataFrame(data, geometry=kw.pop("geometry", gpd.points_from_xy(x, y)), **kw)
+
+    import shapely
+
+    line = [shapely.LineString([(x[0], y[0]), (x[1], y[1])])] * 2
+    return {
+        "no crs": (lambda: frame(crs=None), r"has no CRS; assign one in your GIS"),
+        "lines": (
+            lambda: frame(geometry=line, crs=UTM),
+            r"holds LineString geometries; observations must be Point features",
+        ),
+        "text values": (
+            lambda: frame(data={"rate": ["1.0", "fast"]}, crs=UTM),
+            r"attribute 'rate' is not a number in 1 features \(first: feature 1\)",
+        ),
+        "zero sigma": (
+            lambda: frame(data={"rate_sd": [0.1, 0.0]}, crs=UTM),
+            r"the error \(sigma\) of 1 observations is not positive \(first: 'B'\)",
+        ),
+        "duplicate names": (
+            lambda: frame(data={"name": ["A", "A"]}, crs=UTM),
+            r"observation name 'A' is used twice",
+        ),
+        "not a vector file": (None, r"is not a vector file GDAL can read"),
+    }
+
+
+@pytest.mark.parametrize("case", list(_bad_points(None)))
+def test_bad_observation_files_are_one_line_errors(tmp_path, case):
+    _grids(tmp_path)
+    write, message = _bad_points(tmp_path)[case]
+    if write is None:
+        (tmp_path / "obs.gpkg").write_text("not a GeoPackage")
+    else:
+        write().to_file(tmp_path / "obs.gpkg", driver="GPKG")
+    scenario = _scenario(tmp_path, ETA, "seed = 1")
+    with pytest.raises(CrustflowInputError, match=message) as info:
+        fit(scenario)
+    assert "\n" not in str(info.value)
+
+
+def test_forcing_the_fast_path_where_it_does_not_apply_is_an_error(tmp_path):
+    _grids(tmp_path)
+    text = SCENARIO.replace(
+        'viscosity = "1e19 Pa*s"',
+        'rheology = "power-law"\nstress_exponent = 3\nprefactor = "4e-34 Pa^-3 s^-1"',
+    )
+    (tmp_path / "pl.toml").write_text(text)
+    base = crustflow.load_scenario(tmp_path / "pl.toml")
+    with pytest.raises(
+        CrustflowInputError, match="the fast path does not apply: the channel is power-law"
+    ):
+        SiteModel(base, [10], [10], ["uplift_rate"], fast=True)
