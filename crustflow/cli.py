@@ -495,6 +495,12 @@ def _fit(scenario_path: Path, out: Path, quiet: bool) -> int:
         manifest["fit"] = done["manifest"]
         write_manifest(tmp, manifest, done["written"])
     if not quiet:
+        if not done["result"].fast_path:
+            print(
+                f"crustflow: fast path not used ({done['result'].fast_path_obstacle}): every "
+                "sample ran a full solve",
+                file=sys.stderr,
+            )
         for name, reason in done["result"].dropped:
             print(f"crustflow: dropped observation {name!r}: {reason}", file=sys.stderr)
         print(done["result"].summary.drop(columns="derived").to_string(index=False))

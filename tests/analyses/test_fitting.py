@@ -615,6 +615,7 @@ def _bad_points(folder):
     }
 
 
+@pytest.mark.filterwarnings("ignore:'crs' was not provided")
 @pytest.mark.parametrize("case", list(_bad_points(None)))
 def test_bad_observation_files_are_one_line_errors(tmp_path, case):
     _grids(tmp_path)

@@ -180,6 +180,8 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
     table = _observations(scenario, spec)
     frame = table.frame
     model = SiteModel(scenario, frame["row"], frame["col"], frame["variable"], fast=fast)
+    if not model.fast:
+        logger.info("fast path not used (%s): every sample runs a full solve", model.obstacle)
     defined = model.defined()
     table.drop(~defined, "on nodata or a grid edge (no model value at its cell)")
     model.keep(defined)
