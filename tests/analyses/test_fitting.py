@@ -247,7 +247,7 @@ def test_split_rhat_flags_chains_that_disagree():
 
 
 @pytest.mark.parametrize("airy_case", [False, True])
-def test_site_values_and_likelihood_equal_the_full_solve(tmp_path, airy_case):
+def test_site_values_fast_and_fallback_equal_the_full_solve(tmp_path, airy_case):
     base = _base(tmp_path)
     if airy_case:
         text = SCENARIO.replace('crust_thickness = "crust.tif"', 'reference_thickness = "35 km"')
