@@ -253,6 +253,20 @@ def _print_ensemble_summary(summary: dict) -> None:
             print(f"  {str(row.name)[:24]:<24} {values}")
 
 
+def _do_fit(args) -> int:
+    done = _command("fit").fit(args.scenario, args.out, progress=_bar(args))
+    result = done["result"]
+    if not args.quiet:
+        if not result.fast_path:
+            _say(f"fast path not used ({result.fast_path_obstacle}): every sample ran a full solve")
+        for name, reason in result.dropped:
+            _say(f"dropped observation {name!r}: {reason}")
+        print(result.summary.drop(columns="derived").to_string(index=False))
+        print(f"fit: {done['summary_line']}")
+    _say(f"wrote {done['folder']}", args.quiet)
+    return 0
+
+
 def _do_check(args) -> int:
     _print_check(_command("check").check(args.scenario))
     return 0
@@ -265,6 +279,7 @@ _COMMANDS = {
     "profile": _do_profile,
     "ensemble": _do_ensemble,
     "check": _do_check,
+    "fit": _do_fit,
 }
 
 
@@ -400,6 +415,23 @@ def _add_ensemble(sub) -> None:
     _add_quiet(ensemble)
 
 
+def _add_fit(sub) -> None:
+    fit = sub.add_parser(
+        "fit",
+        help="posterior of channel parameters from observed rates",
+        description="Fit the [fit.parameters] of a scenario to the observations of its [fit] "
+        "table (affine-invariant ensemble sampler from a MAP start): writes fit_summary.csv, "
+        "posterior.csv, posterior_predictive.nc, fit_residuals.gpkg and figures, and prints the "
+        "summary and a chi-square line. Uplift data constrain the transmissivity h^3/(12 eta), not "
+        "h and eta apart. A fit of a simplified model is a consistency test, not a "
+        "measurement.\n\n" + CAUTION_HELP,
+        formatter_class=_FORMAT,
+    )
+    fit.add_argument("scenario", type=Path, help="scenario file (TOML) with [fit]")
+    _add_out(fit, "crustflow_fit", "")
+    _add_quiet(fit)
+
+
 def _add_check(sub) -> None:
     check = sub.add_parser(
         "check",
@@ -419,7 +451,15 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"crustflow {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for add in (_add_run, _add_demo, _add_budget, _add_profile, _add_ensemble, _add_check):
+    for add in (
+        _add_run,
+        _add_demo,
+        _add_budget,
+        _add_profile,
+        _add_ensemble,
+        _add_fit,
+        _add_check,
+    ):
         add(sub)
     return parser
 

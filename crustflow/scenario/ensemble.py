@@ -169,16 +169,17 @@ def parse_ensemble(raw: dict, parameters: ModelParameters) -> EnsembleSpec:
     )
 
 
-def _parse_varied(key: str, table, parameters: ModelParameters):
+def _parse_varied(key: str, table, parameters: ModelParameters, section: str = "ensemble.vary"):
+    """One varied key of ``[<section>]`` (``ensemble.vary``; ``fit.parameters`` reuses it)."""
     if key not in VARIABLE_KEYS:
         raise _unknown(
             key,
             VARIABLE_KEYS,
-            "[ensemble.vary]",
+            f"[{section}]",
             f"; the keys that can vary: {', '.join(VARIABLE_KEYS)}",
         )
     spec = VARIABLE_KEYS[key]
-    where = f'ensemble.vary."{key}"'
+    where = f'{section}."{key}"'
     if any(getattr(parameters, f) is None for f in spec.fields):
         why = (
             "the scenario has a crust thickness or Moho grid (it is for the Airy case only)"

@@ -50,8 +50,13 @@ class _Scalars:
         def get(name):  # None (a parameter the rheology does not use) becomes NaN
             return np.array([getattr(p, name) for p in members], dtype=float)
 
+        return cls.of_values(get, airy)
+
+    @classmethod
+    def of_values(cls, get, airy: bool) -> _Scalars:
+        """Scalars from ``get(field)``: the values of a ModelParameters field over the members."""
         rho_c, rho_m, rho_w = get("rho_crust"), get("rho_mantle"), get("rho_water")
-        zero = np.zeros(len(members))
+        zero = np.zeros_like(rho_c)
         if airy:  # Airy: T = T0 + a H on land, T0 + b H under water (load.crust_thickness_airy)
             t0, a, b = (
                 get("reference_thickness"),
@@ -218,7 +223,10 @@ class _Chunk:
 
     def _linear(self, name: str, slot: str) -> np.ndarray:
         terms = _terms(name, self.s)
-        basis = np.stack([np.nan_to_num(self._column(c), nan=0.0) for c, _ in terms], axis=1)
+        basis = self.columns.get(f"stack:{name}")  # kept with the columns: a fit reuses them
+        if basis is None:
+            basis = np.stack([np.nan_to_num(self._column(c), nan=0.0) for c, _ in terms], axis=1)
+            self.columns[f"stack:{name}"] = basis
         coef = np.stack([np.broadcast_to(v, (self.buf.members,)) for _, v in terms])
         return np.matmul(basis, coef, out=self.buf.get(slot, self.cells))
 

@@ -1,0 +1,1 @@
+"""Fitting the channel to observations: posterior of scalar parameters from observed rates."""
