@@ -22,8 +22,13 @@ from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
 
-from crustflow.errors import CrustflowInputError, CrustflowWriteError
+from crustflow.errors import CrustflowError, CrustflowInputError, CrustflowWriteError
 from crustflow.io.grids import file_checksum
+
+try:
+    import resource
+except ImportError:  # pragma: no cover - not on Windows
+    resource = None
 
 __all__ = [
     "MANIFEST",
@@ -69,6 +74,10 @@ OWNER_FORMAT = 1
 
 #: Marker file written first into a partial folder (pid, host, start time of the run).
 PARTIAL_MARKER = ".crustflow-partial.json"
+
+#: Free bytes (or bytes below the file-size limit) under which a failed write is put down to a
+#: full disk or the limit (common practice, no source: a few file-system blocks).
+_DISK_SLACK = 64 * 1024
 
 #: Files up to this size (bytes) are listed with their SHA-256, larger ones by size only
 #: (common practice, no source: checksums of multi-GB grids would cost more than the check is worth).
@@ -311,6 +320,23 @@ def write_failure(exc: BaseException, out: Path) -> BaseException:
     return exc
 
 
+def _disk_trouble(tmp: Path, out: Path) -> Exception | None:
+    """A full disk or a file that reached the process's file-size limit (RLIMIT_FSIZE) in ``tmp``,
+    as a one-line error; None when neither is the case."""
+    try:
+        sizes = [p.lstat().st_size for p in _walk(tmp).values() if p.is_file()]
+        if resource is not None:
+            limit = resource.getrlimit(resource.RLIMIT_FSIZE)[0]
+            if limit != resource.RLIM_INFINITY and max(sizes, default=0) >= limit - _DISK_SLACK:
+                return _write_error(OSError(errno.EFBIG, "File too large"), out)
+        disk = os.statvfs(tmp)
+        if disk.f_bavail * disk.f_frsize < _DISK_SLACK:
+            return _write_error(OSError(errno.ENOSPC, "No space left on device"), out)
+    except (OSError, AttributeError):
+        return None
+    return None
+
+
 def _start_partial(out: Path) -> Path:
     """Make the partial folder beside ``out`` and write crustflow's marker into it first."""
     try:
@@ -415,11 +441,16 @@ def atomic_folder(out: str | Path, inputs=()) -> Iterator[Path]:
         raise
     try:
         yield tmp
+        trouble = _disk_trouble(tmp, out)  # some writers (libtiff) drop failed writes silently
+        if trouble is not None:
+            raise trouble
         _replace(tmp, out)
     except BaseException as exc:
+        clear = exc
+        if isinstance(exc, Exception) and not isinstance(exc, CrustflowError):
+            clear = _disk_trouble(tmp, out) or write_failure(exc, out)
         shutil.rmtree(tmp, ignore_errors=True)
         _remove_created(created)
-        clear = write_failure(exc, out) if isinstance(exc, Exception) else exc
         if clear is not exc:
             raise clear from None
         raise
