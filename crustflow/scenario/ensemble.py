@@ -356,10 +356,10 @@ def _parse_threshold(value, key: str, name: str) -> float:
         )
     import pint
 
-    from crustflow.units import _registry  # the project's one pint registry (parse_quantity's own)
+    from crustflow.units import quantity as checked_quantity  # the grammar, then pint
 
     try:
-        quantity = _registry().Quantity(value.strip())
+        quantity = checked_quantity(value, key, example)
         practical = float(quantity.to(_PINT_UNITS.get(var.units, var.units)).magnitude)
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
         raise CrustflowInputError(
