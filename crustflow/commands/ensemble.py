@@ -6,6 +6,7 @@ import time
 from pathlib import Path
 
 from crustflow.analyses.ensemble.run import run_ensemble
+from crustflow.analyses.memory import check_memory
 from crustflow.errors import CrustflowInputError
 from crustflow.io.folders import (
     atomic_folder,
@@ -40,6 +41,7 @@ def ensemble(scenario_path: Path, out: Path, *, progress: bool = False) -> dict:
         )
     inputs = protected_inputs(scenario)
     check_out_dir(out, inputs)
+    check_memory(scenario)
     began = time.perf_counter()
     with atomic_folder(out, inputs) as tmp:
         result = ensemble_into(scenario, tmp, progress=progress)

@@ -6,6 +6,7 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from crustflow.analyses.memory import check_memory
 from crustflow.commands.common import Stages, check_features, distributed_client, write_budgets
 from crustflow.engine.strips import run_strips
 from crustflow.io.folders import (
@@ -44,6 +45,7 @@ def run(
     scenario = load_scenario(scenario_path)
     inputs = protected_inputs(scenario)
     check_out_dir(out, inputs)
+    check_memory(scenario)
     stages = Stages(announce)
     budgets = scenario.sections is not None or scenario.regions is not None
     if budgets:
