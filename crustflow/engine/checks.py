@@ -140,9 +140,9 @@ class CellInputCheck:
         }
         for key, (count, example) in self.bad.items():
             if key == "viscosity":
-                low, high = constants.VISCOSITY_RANGE
+                low, high = (f"{v:.0e}".replace("e+", "e") for v in constants.VISCOSITY_RANGE)
                 raise CrustflowInputError(
-                    f"channel.viscosity grid has {count} cells outside {low:.0e}-{high:.0e} Pa s ".replace("e+", "e")
+                    f"channel.viscosity grid has {count} cells outside {low}-{high} Pa s "
                     f"(e.g. {example:.6g} Pa s after unit conversion), the range of crustal "
                     "channels and salt (see the README); check the grid and its units"
                 )
