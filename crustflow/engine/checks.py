@@ -117,17 +117,22 @@ class CellInputCheck:
         for key, values in cell.items():
             if key == "viscosity":
                 low, high = constants.VISCOSITY_RANGE
-                bad = np.isfinite(values) & ~((values >= low) & (values <= high))
-            elif key in ("channel_thickness", "surface_heat_flow"):
+                self._add(
+                    "viscosity_range", values, (values > 0) & ((values < low) | (values > high))
+                )
+            if key in ("channel_thickness", "viscosity", "surface_heat_flow"):
                 bad = np.isfinite(values) & ~(values > 0)
             elif key.startswith("temperature"):
                 bad = np.isfinite(values) & ~((values > 0) & (values <= MAX_TEMPERATURE))
             else:
                 continue
-            if bad.any():
-                count, worst = self.bad.get(key, (0, np.nan))
-                first = float(values[bad].flat[0])
-                self.bad[key] = (count + int(bad.sum()), worst if count else first)
+            self._add(key, values, bad)
+
+    def _add(self, key: str, values: np.ndarray, bad: np.ndarray) -> None:
+        if bad.any():
+            count, worst = self.bad.get(key, (0, np.nan))
+            first = float(values[bad].flat[0])
+            self.bad[key] = (count + int(bad.sum()), worst if count else first)
 
     def finish(self) -> None:
         """Raise :class:`CrustflowInputError` for the first grid with bad values."""
@@ -138,8 +143,10 @@ class CellInputCheck:
             "temperature_base": "channel.temperature.base",
             "surface_heat_flow": "channel.temperature.surface_heat_flow",
         }
-        for key, (count, example) in self.bad.items():
-            if key == "viscosity":
+        for key, (count, example) in sorted(
+            self.bad.items(), key=lambda kv: kv[0].endswith("_range")
+        ):
+            if key == "viscosity_range":
                 low, high = (f"{v:.0e}".replace("e+", "e") for v in constants.VISCOSITY_RANGE)
                 raise CrustflowInputError(
                     f"channel.viscosity grid has {count} cells outside {low}-{high} Pa s "
