@@ -7,6 +7,7 @@ so a failed run leaves no half-written output. Inputs are never opened for writi
 from __future__ import annotations
 
 import errno
+import glob
 import json
 import os
 import platform
@@ -162,20 +163,26 @@ def foreign_entries(out: Path) -> list[str]:
     every entry in ``out`` is listed there with the same kind and size (and checksum, for files up
     to :data:`CHECKSUM_LIMIT` bytes).
     """
-    present = _walk(out)
     listing = _owned_listing(out)
-    if listing is None:
-        return sorted(present)
-    foreign = [f"{name} (missing)" for name in listing if name not in present]
-    for name, path in present.items():
-        if name == MANIFEST:
-            continue
-        expected = listing.get(name)
-        actual = _entry(path)
-        if isinstance(expected, dict) and "sha256" not in expected:
-            actual.pop("sha256", None)
-        if actual != expected:
-            foreign.append(name)
+    if listing is None:  # nothing is provably ours: the top level is enough to say so
+        return sorted(entry.name for entry in os.scandir(out))
+    foreign, seen = [], set()
+    for root, dirs, files in os.walk(out, followlinks=False):
+        for name in list(dirs) + files:
+            path = Path(root) / name
+            rel = path.relative_to(out).as_posix()
+            if rel == MANIFEST:
+                continue
+            seen.add(rel)
+            expected = listing.get(rel)
+            actual = _entry(path)
+            if isinstance(expected, dict) and "sha256" not in expected:
+                actual.pop("sha256", None)
+            if actual != expected:
+                foreign.append(rel)
+                if name in dirs:
+                    dirs.remove(name)  # a foreign folder: do not walk the user's tree
+    foreign += [f"{name} (missing)" for name in listing if name not in seen]
     return sorted(foreign)
 
 
@@ -239,7 +246,7 @@ def stale_partials(out: Path) -> list[Path]:
     stale = []
     if not out.parent.is_dir():
         return stale
-    for path in out.parent.glob(f".{out.name}.partial-*"):
+    for path in out.parent.glob(f".{glob.escape(out.name)}.partial-*"):
         if path.is_symlink() or not path.is_dir():
             continue
         try:

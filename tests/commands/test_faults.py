@@ -571,3 +571,26 @@ def test_float32_overflow_is_written_as_nodata(tmp_path):
     with rasterio.open(tmp_path / "a.tif") as src:
         data = src.read(1)
     assert np.isnan(data[0, 0]) and not np.isinf(data).any() and data[1, 1] == 1.0
+
+
+def test_signal_handlers_are_restored(grids_dir, capsys):
+    from crustflow.cli import main
+
+    def mine(signum, frame):  # a host program's own handler
+        pass
+
+    previous = signal.signal(signal.SIGTERM, mine)
+    try:
+        assert main(["check", str(grids_dir / "missing.toml")]) == 2
+        assert signal.getsignal(signal.SIGTERM) is mine
+        assert signal.getsignal(signal.SIGHUP) is not None
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    assert "scenario file not found" in capsys.readouterr().err
+
+
+def test_interrupt_exception_carries_the_signal():
+    from crustflow.errors import CrustflowInterrupt
+
+    exc = CrustflowInterrupt(signal.SIGTERM)
+    assert isinstance(exc, KeyboardInterrupt) and exc.signum == 15
