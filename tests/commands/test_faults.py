@@ -12,10 +12,13 @@ import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import pytest
+from conftest import SCENARIO, airy, bump, write_grid
 
-from tests.conftest import SCENARIO, airy, bump, write_grid
+#: The checkout whose crustflow the subprocesses run.
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def _snapshot(folder):
@@ -27,7 +30,7 @@ def _snapshot(folder):
 
 
 def _crustflow(args, **kwargs):
-    env = dict(os.environ, PYTHONPATH=os.getcwd())
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
     return subprocess.Popen(
         [sys.executable, "-m", "crustflow", *args],
         stdout=subprocess.PIPE,
