@@ -144,8 +144,8 @@ def output_listing(folder: Path) -> dict[str, dict]:
 
 
 def _owned_listing(out: Path) -> dict[str, dict] | None:
-    """The listing of ``out``'s manifest if ``out`` provably holds only what crustflow wrote there
-    (marker present, every listed entry present and unchanged, nothing else), else None."""
+    """The ownership listing in ``out``'s manifest (name -> kind, size, checksum), or None when the
+    manifest is missing, unreadable or carries no crustflow marker of this format."""
     try:
         manifest = json.loads((out / MANIFEST).read_text())
         listing = manifest[OWNER_KEY]["files"]
@@ -175,6 +175,11 @@ def foreign_entries(out: Path) -> list[str]:
                 continue
             seen.add(rel)
             expected = listing.get(rel)
+            if expected is None:
+                foreign.append(rel)
+                if name in dirs:
+                    dirs.remove(name)  # a foreign folder: do not walk the user's tree
+                continue
             actual = _entry(path)
             if isinstance(expected, dict) and "sha256" not in expected:
                 actual.pop("sha256", None)
@@ -187,7 +192,7 @@ def foreign_entries(out: Path) -> list[str]:
 
 
 def _name_list(names: list[str], limit: int = 3) -> str:
-    shown = ", ".join(names[:limit])
+    shown = ", ".join(n if n.isprintable() else repr(n) for n in names[:limit])
     return shown + (f" and {len(names) - limit} more" if len(names) > limit else "")
 
 
