@@ -2,7 +2,7 @@
 
 The work of each command is a function in :mod:`crustflow.commands` (imported when the command runs,
 so that ``crustflow --help`` stays quick). Exit status: 0 on success, 2 on bad input (one line naming
-the problem and the fix), 130 when interrupted, 1 otherwise.
+the problem and the fix), 130 when interrupted (Ctrl-C), 143 on SIGTERM, 129 on SIGHUP, 1 otherwise.
 """
 
 from __future__ import annotations
@@ -10,12 +10,15 @@ from __future__ import annotations
 import argparse
 import importlib
 import logging
+import signal
 import sys
+import threading
 import warnings
+from contextlib import contextmanager
 from pathlib import Path
 
 from crustflow._version import __version__
-from crustflow.errors import CrustflowInputError
+from crustflow.errors import CrustflowInputError, CrustflowInterrupt, CrustflowWriteError
 
 CAUTION_HELP = (
     "Outputs are research estimates of a simplified model (thin channel, rigid walls, lithostatic "
@@ -476,7 +479,34 @@ def main(argv: list[str] | None = None) -> int:
         warnings.simplefilter("ignore", DeprecationWarning)
         warnings.simplefilter("ignore", PendingDeprecationWarning)
         warnings.showwarning = _show_warning
-        return _main(argv)
+        with _signals_as_interrupts():
+            return _main(argv)
+
+
+#: Signals that end a run like Ctrl-C: what batch schedulers (SIGTERM) and closed terminals
+#: (SIGHUP) send. Exit status 128 + the signal's number (POSIX shell convention).
+_SIGNALS = tuple(getattr(signal, name) for name in ("SIGTERM", "SIGHUP") if hasattr(signal, name))
+
+
+def _on_signal(signum, frame) -> None:
+    for sig in _SIGNALS:  # a second signal must not interrupt the clean-up
+        signal.signal(sig, signal.SIG_IGN)
+    raise CrustflowInterrupt(signum)
+
+
+@contextmanager
+def _signals_as_interrupts():
+    """Turn SIGTERM and SIGHUP into :class:`CrustflowInterrupt` while a command runs; restore the
+    previous handlers afterwards (main thread only: elsewhere signals cannot be handled)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = {sig: signal.signal(sig, _on_signal) for sig in _SIGNALS}
+    try:
+        yield
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
@@ -496,9 +526,12 @@ def _main(argv: list[str] | None) -> int:
     except CrustflowInputError as exc:
         print(f"crustflow: error: {exc}", file=sys.stderr)
         return 2
-    except KeyboardInterrupt:
+    except CrustflowWriteError as exc:
+        print(f"crustflow: error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt as exc:
         print("crustflow: interrupted; nothing was written", file=sys.stderr)
-        return 130
+        return 128 + exc.signum if isinstance(exc, CrustflowInterrupt) else 130
     except Exception as exc:  # noqa: BLE001 - one line unless --debug
         if args.debug:
             raise

@@ -26,3 +26,15 @@ RHO_WATER = 1030.0
 #: Common practice, no source: no continental or oceanic crust is thinner than ~3 km, and a grid whose
 #: largest value is below this number is almost certainly written in km.
 KILOMETRE_SUSPICION = 1000.0
+
+#: Range of surface elevation on Earth, m: the Challenger Deep, about -10.9 km (Gardner et al. 2014,
+#: Marine Geodesy 37; from memory), and Everest, 8848.86 m (Nepal-China survey 2020), rounded
+#: outwards. Topography outside it is a units or fill-value mistake.
+ELEVATION_RANGE = (-11_000.0, 9_000.0)
+
+#: Viscosities a crustal channel model may be given, Pa s. Published lower-crustal channel estimates
+#: span about 1e16-1e21 Pa s (Clark & Royden 2000, Geology 28; Copley & McKenzie 2007;
+#: Bendick et al. 2008) and weak salt about 1e17-1e19 (Urai et al. 2008, Salt tectonics; from memory);
+#: a decade or more of margin each side. Outside it the flux is either negligible or the model's
+#: strain rates are unphysical, and values over ~3e38 would overflow the float32 outputs.
+VISCOSITY_RANGE = (1e15, 1e25)

@@ -7,11 +7,22 @@ on the way in. ``yr`` is the Julian year, 365.25 d (pint's definition, and crust
 
 from __future__ import annotations
 
+import math
+import re
 from functools import lru_cache
 
 from crustflow.errors import CrustflowInputError
 
-__all__ = ["DIMENSIONS", "parse_quantity", "parse_vector", "unit_conversion", "parse_prefactor"]
+__all__ = [
+    "DIMENSIONS",
+    "parse_quantity",
+    "parse_vector",
+    "unit_conversion",
+    "parse_prefactor",
+    "split_quantity",
+    "checked_units",
+    "quantity",
+]
 
 #: The kinds of quantity scenario keys take: pint dimensionality, SI unit, and an example for messages.
 DIMENSIONS: dict[str, tuple[str, str, str]] = {
@@ -35,6 +46,145 @@ def _registry():
     import pint
 
     return pint.UnitRegistry()
+
+
+# ---------------------------------------------------------------------------------------------
+# the grammar of a value with units (checked before pint sees the text)
+
+#: Longest value with units accepted (characters); scenario values are short.
+MAX_VALUE_LENGTH = 120
+
+#: Largest exponent a unit may carry (``m^3``, ``MPa^-4.7``); flow-law stress exponents stay below 10
+#: (Ranalli 1995, table 10.3: n 1.9-5.1), so 10 leaves room without allowing huge powers.
+MAX_UNIT_EXPONENT = 10
+
+#: Deepest nesting of parentheses in a unit expression.
+MAX_UNIT_DEPTH = 2
+
+_NUMBER = re.compile(r"\s*([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d{1,4})?)")
+_NON_FINITE = re.compile(r"\s*[+-]?(inf(inity)?|nan)\b", re.IGNORECASE)
+_NAME = re.compile(r"(?:[^\W\d]|°)(?:\w|°)*")
+_EXPONENT = re.compile(r"\s*([+-]?\d{1,2}(?:\.\d{1,3})?)")
+_SPACE = re.compile(r"\s+")
+
+
+def _unit_problem(text: str) -> str | None:
+    """Why ``text`` is not a unit expression of the grammar (None when it is one).
+
+    Grammar: ``expr := factor ((* | / | space) factor)*``; ``factor := (NAME | 1 | ( expr ))
+    [(^ | **) EXPONENT]``; EXPONENT a signed number of at most two digits (and three decimals) with
+    absolute value at most :data:`MAX_UNIT_EXPONENT`; parentheses at most :data:`MAX_UNIT_DEPTH`
+    deep. Nothing else (no calls, attributes, quotes, brackets or nested powers) passes.
+    """
+    pos, depth, operand, powered = 0, 0, True, False  # operand: a factor is expected next
+    while pos < len(text):
+        space = _SPACE.match(text, pos)
+        if space:
+            pos = space.end()
+            continue
+        char = text[pos]
+        if operand:
+            name = _NAME.match(text, pos)
+            if name or char == "1":
+                pos, operand = (name.end() if name else pos + 1), False
+            elif char == "(":
+                depth += 1
+                if depth > MAX_UNIT_DEPTH:
+                    return f"parentheses nested deeper than {MAX_UNIT_DEPTH}"
+                pos += 1
+            else:
+                return f"unexpected {char!r} where a unit name was expected"
+            continue
+        if text.startswith("**", pos) or char == "^":
+            if powered:
+                return "a power of a power"
+            pos += 2 if char == "*" else 1
+            exponent = _EXPONENT.match(text, pos)
+            if not exponent or abs(float(exponent.group(1))) > MAX_UNIT_EXPONENT:
+                return f"a unit power must be a small number (at most {MAX_UNIT_EXPONENT})"
+            pos, powered = exponent.end(), True
+            continue
+        powered = False
+        if char == ")":
+            depth -= 1
+            if depth < 0:
+                return "unbalanced parentheses"
+            pos += 1
+        elif char in "*/":
+            pos, operand = pos + 1, True
+        elif _NAME.match(text, pos) or char in "1(":
+            operand = True  # a space between units multiplies, as in "Pa s"
+        else:
+            return f"unexpected {char!r}"
+    if depth:
+        return "unbalanced parentheses"
+    if operand:
+        return "the units end with an operator"
+    return None
+
+
+def _shown(value: str) -> str:
+    return repr(value if len(value) <= 60 else value[:57] + "...")
+
+
+def split_quantity(value: str, key: str, example: str) -> tuple[float, str]:
+    """Split a value such as ``"1e19 Pa*s"`` into its number and its unit text, by the grammar
+    (a number: optional sign, decimals, exponent; then a unit expression, see
+    :func:`_unit_problem`). Only text that passes is later handed to pint.
+
+    Raises
+    ------
+    CrustflowInputError
+        Naming ``key``, what is wrong and an ``example`` of a valid value; for values that are not
+        finite (``inf``, ``nan``, ``1e999``) too.
+    """
+    if len(value) > MAX_VALUE_LENGTH:
+        raise CrustflowInputError(
+            f"{key} = {_shown(value)} is too long for a number with units; write e.g. "
+            f"{key} = {example}"
+        )
+    if _NON_FINITE.match(value):
+        raise CrustflowInputError(
+            f"{key} = {_shown(value)} is not a finite number; write e.g. {key} = {example}"
+        )
+    number = _NUMBER.match(value)
+    if not number:
+        raise CrustflowInputError(
+            f"{key} = {_shown(value)} does not start with a number; write a number and units, "
+            f"e.g. {key} = {example}"
+        )
+    magnitude = float(number.group(1))
+    if not math.isfinite(magnitude):
+        raise CrustflowInputError(
+            f"{key} = {_shown(value)} is not a finite number; write e.g. {key} = {example}"
+        )
+    unit = value[number.end() :].strip()
+    problem = _unit_problem(unit) if unit else None
+    if problem:
+        raise CrustflowInputError(
+            f"{key} = {_shown(value)} is not a number followed by units ({problem}); write e.g. "
+            f"{key} = {example}"
+        )
+    return magnitude, unit
+
+
+def checked_units(units: str, key: str, example: str) -> str:
+    """Unit text (no number) checked by the grammar of :func:`split_quantity`; returned stripped."""
+    text = units.strip()
+    problem = _unit_problem(text) if len(text) <= MAX_VALUE_LENGTH else "too long"
+    if problem:
+        raise CrustflowInputError(
+            f"{key}: units {_shown(units)} are not understood ({problem}); write e.g. "
+            f"units = {example}"
+        )
+    return text
+
+
+def quantity(value: str, key: str, example: str):
+    """A pint Quantity of a value that passed the grammar of :func:`split_quantity`."""
+    magnitude, unit = split_quantity(value, key, example)
+    ureg = _registry()
+    return ureg.Quantity(magnitude, unit) if unit else ureg.Quantity(magnitude)
 
 
 def parse_quantity(value: object, key: str, kind: str) -> float:
@@ -67,15 +217,13 @@ def parse_quantity(value: object, key: str, kind: str) -> float:
                 f"{key} = {value!r} has no units; write it as a string with units, e.g. {key} = {example}"
             )
         raise CrustflowInputError(f"{key} must be a string with units, e.g. {key} = {example}")
+    magnitude, unit = split_quantity(value, key, example)
     import pint
 
     ureg = _registry()
     try:
-        number, _, unit = value.strip().partition(" ")
-        if kind == "temperature" and unit.strip():  # offset units (degC) need number and unit apart
-            quantity = ureg.Quantity(float(number), unit.strip())
-        else:
-            quantity = ureg.Quantity(value.strip())
+        # number and unit apart: offset units (degC) need it, and pint sees only checked units
+        quantity = ureg.Quantity(magnitude, unit) if unit else magnitude
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError) as exc:
         raise CrustflowInputError(
             f"{key} = {value!r} is not a number with units ({exc.__class__.__name__}); "
@@ -90,7 +238,12 @@ def parse_quantity(value: object, key: str, kind: str) -> float:
             f"{key} = {value!r} has units of {quantity.dimensionality}, expected a {kind} "
             f"such as {example}"
         )
-    return float(quantity.to(si_unit).magnitude)
+    si = float(quantity.to(si_unit).magnitude)
+    if not math.isfinite(si):
+        raise CrustflowInputError(
+            f"{key} = {value!r} is too large to represent; write e.g. {key} = {example}"
+        )
+    return si
 
 
 def unit_conversion(units: object, key: str, kind: str) -> tuple[float, float]:
@@ -111,9 +264,10 @@ def unit_conversion(units: object, key: str, kind: str) -> tuple[float, float]:
     import pint
 
     ureg = _registry()
+    text = checked_units(units, key, example.split()[-1])
     try:
-        zero = ureg.Quantity(0.0, units.strip())
-        one = ureg.Quantity(1.0, units.strip())
+        zero = ureg.Quantity(0.0, text)
+        one = ureg.Quantity(1.0, text)
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
         raise CrustflowInputError(
             f"{key}: units {units!r} are not understood; write e.g. units = {example.split()[-1]}"
@@ -134,8 +288,9 @@ def parse_prefactor(value: object, key: str, stress_exponent: float) -> float:
     import pint
 
     ureg = _registry()
+    magnitude, unit = split_quantity(value, key, example)
     try:
-        quantity = ureg.Quantity(value.strip())
+        quantity = ureg.Quantity(magnitude, unit)
         target = ureg.Quantity(1.0, "Pa") ** (-stress_exponent) / ureg.Quantity(1.0, "s")
         return float((quantity / target).to("dimensionless").magnitude)
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):

@@ -9,7 +9,14 @@ from pathlib import Path
 from crustflow.commands.common import check_features, write_budgets
 from crustflow.engine.strips import BUDGET_VARIABLES, run_strips
 from crustflow.errors import CrustflowInputError
-from crustflow.io.folders import MANIFEST, atomic_folder, base_manifest, write_manifest
+from crustflow.io.folders import (
+    MANIFEST,
+    atomic_folder,
+    base_manifest,
+    check_out_dir,
+    protected_inputs,
+    write_manifest,
+)
 from crustflow.io.grids import file_checksum
 from crustflow.scenario import load_scenario
 
@@ -29,10 +36,15 @@ def budget(scenario_path: Path, out: Path, *, sections=None, regions=None, run_d
         raise CrustflowInputError(
             "give --sections FILE and/or --regions FILE (or a [budgets] table in the scenario)"
         )
-    check_features(scenario)
     fields_nc = run_dir.expanduser().resolve() / "fields.nc"
+    # the earlier run's fields and manifest are inputs too: --out may not replace them
+    inputs = protected_inputs(
+        scenario, *(p for p in (fields_nc, fields_nc.parent / MANIFEST) if p.is_file())
+    )
+    check_out_dir(out, inputs)
+    check_features(scenario)
     reuse = fields_nc.is_file() and _same_run(fields_nc.parent, scenario, BUDGET_VARIABLES)
-    with atomic_folder(out, scenario.input_paths) as tmp:
+    with atomic_folder(out, inputs) as tmp:
         if reuse:
             path = fields_nc
         else:

@@ -6,8 +6,15 @@ import time
 from pathlib import Path
 
 from crustflow.analyses.ensemble.run import run_ensemble
+from crustflow.analyses.memory import check_memory
 from crustflow.errors import CrustflowInputError
-from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
+from crustflow.io.folders import (
+    atomic_folder,
+    base_manifest,
+    check_out_dir,
+    protected_inputs,
+    write_manifest,
+)
 from crustflow.scenario import load_scenario
 
 __all__ = ["ensemble", "ensemble_into"]
@@ -32,8 +39,11 @@ def ensemble(scenario_path: Path, out: Path, *, progress: bool = False) -> dict:
             "the scenario has no [ensemble] table; add one with members, seed "
             "and [ensemble.vary] (see the README)"
         )
+    inputs = protected_inputs(scenario)
+    check_out_dir(out, inputs)
+    check_memory(scenario)
     began = time.perf_counter()
-    with atomic_folder(out, scenario.input_paths) as tmp:
+    with atomic_folder(out, inputs) as tmp:
         result = ensemble_into(scenario, tmp, progress=progress)
         manifest = base_manifest(scenario, {"ensemble": time.perf_counter() - began})
         manifest["ensemble"] = result["manifest"]

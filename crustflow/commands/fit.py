@@ -6,8 +6,15 @@ import time
 from pathlib import Path
 
 from crustflow.analyses.fitting.run import run_fit
+from crustflow.analyses.memory import check_memory
 from crustflow.errors import CrustflowInputError
-from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
+from crustflow.io.folders import (
+    atomic_folder,
+    base_manifest,
+    check_out_dir,
+    protected_inputs,
+    write_manifest,
+)
 from crustflow.scenario import load_scenario
 
 __all__ = ["fit"]
@@ -25,8 +32,11 @@ def fit(scenario_path: Path, out: Path, *, progress: bool = False) -> dict:
             "the scenario has no [fit] table; add [[fit.observations]], [fit.parameters] and "
             "[fit.sampler] seed (see the README)"
         )
+    inputs = protected_inputs(scenario, *scenario.fit.input_paths)
+    check_out_dir(out, inputs)
+    check_memory(scenario)
     began = time.perf_counter()
-    with atomic_folder(out, scenario.input_paths + scenario.fit.input_paths) as tmp:
+    with atomic_folder(out, inputs) as tmp:
         done = run_fit(scenario, tmp, progress=progress)
         manifest = base_manifest(scenario, {"fit": time.perf_counter() - began})
         manifest["crustflow_run"] = "fit to observations"

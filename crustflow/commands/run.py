@@ -6,9 +6,16 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from crustflow.analyses.memory import check_memory
 from crustflow.commands.common import Stages, check_features, distributed_client, write_budgets
 from crustflow.engine.strips import run_strips
-from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
+from crustflow.io.folders import (
+    atomic_folder,
+    base_manifest,
+    check_out_dir,
+    protected_inputs,
+    write_manifest,
+)
 from crustflow.samples import demo_scenario
 from crustflow.scenario import load_scenario
 
@@ -36,13 +43,16 @@ def run(
     """
     began = time.perf_counter()
     scenario = load_scenario(scenario_path)
+    inputs = protected_inputs(scenario)
+    check_out_dir(out, inputs)
+    check_memory(scenario)
     stages = Stages(announce)
     budgets = scenario.sections is not None or scenario.regions is not None
     if budgets:
         check_features(scenario)
     client, cluster = distributed_client(workers, scheduler)
     try:
-        with atomic_folder(out, scenario.input_paths) as tmp:
+        with atomic_folder(out, inputs) as tmp:
             result = _run_into(scenario, tmp, stages, strip_rows, budgets, client, cog, progress)
     finally:
         if client is not None:

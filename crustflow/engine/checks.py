@@ -9,12 +9,14 @@ thicker than the crust (:class:`ThinCrustCheck`) and roof layers below the chann
 
 from __future__ import annotations
 
+import warnings
 from typing import TYPE_CHECKING
 
 import numpy as np
 
 from crustflow import constants
 from crustflow.errors import CrustflowInputError
+from crustflow.io.grids import FILL_VALUES
 from crustflow.physics.temperature import MAX_TEMPERATURE
 
 if TYPE_CHECKING:
@@ -31,11 +33,19 @@ class GridChecks:
         self.count = dict.fromkeys(sources, 0)
         self.vmin = dict.fromkeys(sources, np.inf)
         self.vmax = dict.fromkeys(sources, -np.inf)
+        untagged = [k for k, s in sources.items() if getattr(s, "nodata", 0.0) is None]
+        self.fill = dict.fromkeys(untagged, 0)
+        self.fill_seen: dict[str, set] = {k: set() for k in untagged}
 
     def update(self, arrays: dict[str, np.ndarray]) -> None:
         """Add a strip of rows of each grid."""
         for key, values in arrays.items():
             finite = values[np.isfinite(values)]
+            if key in self.fill and finite.size:
+                filled = np.isin(finite, FILL_VALUES)
+                if filled.any():
+                    self.fill[key] += int(filled.sum())
+                    self.fill_seen[key].update(float(v) for v in np.unique(finite[filled]))
             if finite.size:
                 self.count[key] += finite.size
                 self.vmin[key] = min(self.vmin[key], float(finite.min()))
@@ -43,13 +53,21 @@ class GridChecks:
 
     def finish(self) -> None:
         """Raise :class:`CrustflowInputError` for the first problem found."""
-
+        self.warn_fill_values()
         for key, src in self.sources.items():
             if self.count[key] == 0:
                 where = "" if key == "topography" else " on the topography grid"
                 raise CrustflowInputError(
                     f"{src.name}: {src.path} holds no valid cells{where} (all "
                     "nodata); check the file, its extent or its nodata value"
+                )
+            if key == "topography":
+                self._check_elevation(src)
+            if key == "moho_depth" and self.vmax[key] <= 0:
+                raise CrustflowInputError(
+                    f"grids.moho_depth is at or above sea level everywhere (max "
+                    f"{self.vmax[key]:.4g} m); it is the Moho's depth below sea level, positive "
+                    "down: check the sign (a Moho elevation grid needs multiplying by -1)"
                 )
             if key in ("crust_thickness", "moho_depth"):
                 if self.vmax[key] < constants.KILOMETRE_SUSPICION:
@@ -63,6 +81,29 @@ class GridChecks:
                     "thickness is surface to Moho and must be positive"
                 )
 
+    def _check_elevation(self, src) -> None:
+        low, high = constants.ELEVATION_RANGE
+        vmin, vmax = self.vmin["topography"], self.vmax["topography"]
+        if vmin < low or vmax > high:
+            raise CrustflowInputError(
+                f"grids.topography has values from {vmin:.6g} to {vmax:.6g} m, outside Earth's "
+                f"{low / 1e3:g} km to +{high / 1e3:g} km; give elevations in metres and tag fill "
+                "values as nodata"
+            )
+
+    def warn_fill_values(self) -> None:
+        """Warn about grids without a nodata tag holding a common fill value (-9999, ...)."""
+        for key, count in self.fill.items():
+            if count:
+                src = self.sources[key]
+                values = ", ".join(f"{v:g}" for v in self.fill_seen[key])
+                warnings.warn(
+                    f"{src.name}: {src.path.name} has no nodata tag but {count} cells hold "
+                    f"{values}, a common fill value; they are read as data: tag the nodata value "
+                    "(e.g. gdal_edit.py -a_nodata -9999) if they are gaps",
+                    stacklevel=2,
+                )
+
 
 class CellInputCheck:
     """Checks per-cell parameter grids block by block; :meth:`finish` raises."""
@@ -74,16 +115,24 @@ class CellInputCheck:
         """Add a block of SI values (``channel_thickness``, ``viscosity``, temperatures...)."""
 
         for key, values in cell.items():
+            if key == "viscosity":
+                low, high = constants.VISCOSITY_RANGE
+                self._add(
+                    "viscosity_range", values, (values > 0) & ((values < low) | (values > high))
+                )
             if key in ("channel_thickness", "viscosity", "surface_heat_flow"):
                 bad = np.isfinite(values) & ~(values > 0)
             elif key.startswith("temperature"):
                 bad = np.isfinite(values) & ~((values > 0) & (values <= MAX_TEMPERATURE))
             else:
                 continue
-            if bad.any():
-                count, worst = self.bad.get(key, (0, np.nan))
-                first = float(values[bad].flat[0])
-                self.bad[key] = (count + int(bad.sum()), worst if count else first)
+            self._add(key, values, bad)
+
+    def _add(self, key: str, values: np.ndarray, bad: np.ndarray) -> None:
+        if bad.any():
+            count, worst = self.bad.get(key, (0, np.nan))
+            first = float(values[bad].flat[0])
+            self.bad[key] = (count + int(bad.sum()), worst if count else first)
 
     def finish(self) -> None:
         """Raise :class:`CrustflowInputError` for the first grid with bad values."""
@@ -94,7 +143,16 @@ class CellInputCheck:
             "temperature_base": "channel.temperature.base",
             "surface_heat_flow": "channel.temperature.surface_heat_flow",
         }
-        for key, (count, example) in self.bad.items():
+        for key, (count, example) in sorted(
+            self.bad.items(), key=lambda kv: kv[0].endswith("_range")
+        ):
+            if key == "viscosity_range":
+                low, high = (f"{v:.0e}".replace("e+", "e") for v in constants.VISCOSITY_RANGE)
+                raise CrustflowInputError(
+                    f"channel.viscosity grid has {count} cells outside {low}-{high} Pa s "
+                    f"(e.g. {example:.6g} Pa s after unit conversion), the range of crustal "
+                    "channels and salt (see the README); check the grid and its units"
+                )
             if key.startswith("temperature"):
                 raise CrustflowInputError(
                     f"{names[key]} grid has {count} cells outside 0 K to 2000 K (e.g. "
@@ -197,6 +255,7 @@ class InputChecks:
         g = self.grids
         return {
             "grid": {k: (g.count[k], g.vmin[k], g.vmax[k]) for k in g.count},
+            "fill": {k: (g.fill[k], sorted(g.fill_seen[k])) for k in g.fill},
             "cell_bad": dict(self.cells.bad),
             "thin": (self.thin.cells, self.thin.thinnest),
             "roof": self.column.roof_cells,
@@ -210,6 +269,10 @@ class InputChecks:
             g.count[key] += count
             g.vmin[key] = min(g.vmin[key], vmin)
             g.vmax[key] = max(g.vmax[key], vmax)
+        for key, (count, seen) in state.get("fill", {}).items():
+            if key in g.fill:
+                g.fill[key] += count
+                g.fill_seen[key].update(seen)
         for key, (count, example) in state["cell_bad"].items():
             old = self.cells.bad.get(key, (0, example))
             self.cells.bad[key] = (old[0] + count, old[1])

@@ -323,13 +323,41 @@ def read_features(path, kind: str, grid_crs) -> gpd.GeoDataFrame:
             f"name the layer to use '{kind}'"
         )
     layer = kind if kind in layers else layers[0]
-    frame = pyogrio.read_dataframe(path, layer=layer)
+    try:
+        frame = pyogrio.read_dataframe(path, layer=layer)
+    except shapely.errors.GEOSException as exc:
+        raise _geometry_error(path, layer, kind, exc) from None
     if not isinstance(frame, gpd.GeoDataFrame) or frame.geometry.name not in frame:
         raise CrustflowInputError(
             f"{kind} file '{path}' holds no geometries; save {kind} as "
             f"{' or '.join(KINDS[kind])} features"
         )
     return checked_features(frame, kind, f"{kind} file '{path}'", grid_crs)
+
+
+def _geometry_error(path: Path, layer: str, kind: str, exc: Exception) -> CrustflowInputError:
+    """One line naming the feature whose geometry GEOS refuses to build (a one-vertex line, a
+    ring of fewer than four points); found by building the features one by one."""
+    import pyogrio.raw
+
+    _, _, wkbs, fields = pyogrio.raw.read(path, layer=layer)
+    meta = pyogrio.read_info(path, layer=layer)
+    names = list(meta["fields"])
+    column = next((i for i, c in enumerate(names) if str(c).lower() == "name"), None)
+    reason = str(exc).split(":", 1)[-1].strip().splitlines()[0]
+    for index, wkb in enumerate(wkbs):
+        try:
+            shapely.from_wkb(wkb)
+        except shapely.errors.GEOSException as bad:
+            reason = str(bad).split(":", 1)[-1].strip().splitlines()[0]
+            name = fields[column][index] if column is not None else index
+            return CrustflowInputError(
+                f"{kind} file '{path}': feature {str(name)!r} has an invalid geometry ({reason}); "
+                "a line needs two or more vertices, a polygon ring four or more: fix it in your GIS"
+            )
+    return CrustflowInputError(
+        f"{kind} file '{path}' holds an invalid geometry ({reason}); fix it in your GIS"
+    )
 
 
 def check_kind(kind: str) -> None:

@@ -8,6 +8,7 @@ written through rioxarray, and the second grid on exactly the topography grid's 
 from __future__ import annotations
 
 import hashlib
+import warnings
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -17,6 +18,15 @@ from crustflow.errors import CrustflowInputError
 
 if TYPE_CHECKING:
     import xarray as xr
+
+#: Values that real topography or thickness grids take, so a nodata tag equal to one of them hides
+#: real cells (sea level, zero thickness; common practice, no source).
+COMMON_REAL_VALUES = (0.0,)
+
+#: Fill values written without a nodata tag by common software (-9999: ESRI ASCII grids' usual
+#: NODATA_value; -32768: the int16 minimum used by SRTM voids; -3.4028235e38: the float32 lowest,
+#: GDAL/ArcGIS float default; -99999; common practice, no source).
+FILL_VALUES = (-9999.0, -32768.0, -99999.0, float(np.finfo(np.float32).min))
 
 __all__ = [
     "GridSource",
@@ -60,7 +70,6 @@ class GridSource:
         self, path, name: str, *, crs: str | None = None, target: GridSource | None = None
     ) -> None:
         import rasterio
-        from rasterio.crs import CRS
 
         self.path, self.name = Path(path), name
         if not self.path.exists():
@@ -94,7 +103,14 @@ class GridSource:
                 f"{name}: {self.path} must be at least 3 x 3 cells "
                 f"(it is {src.height} x {src.width})"
             )
-        self.crs = src.crs if src.crs else (CRS.from_user_input(crs) if crs else None)
+        self.crs = src.crs if src.crs else (_scenario_crs(crs, src) if crs else None)
+        self.nodata = src.nodata
+        if src.nodata is not None and src.nodata in COMMON_REAL_VALUES:
+            warnings.warn(
+                f"{name}: {self.path.name} tags {src.nodata:g} as nodata, a value real data take "
+                "(sea level, zero thickness); such cells are left out: check the nodata tag",
+                stacklevel=2,
+            )
         self.flipped = t.e > 0
         north_up = (
             t
@@ -108,6 +124,15 @@ class GridSource:
             self.transform, self.height, self.width = north_up, src.height, src.width
         else:
             self._align(target, north_up)
+
+    def read_error(self, exc: Exception) -> CrustflowInputError:
+        """One line for a raster that opened but cannot be read (truncated or corrupt)."""
+        first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        first = first.replace(" See previous exception for details.", "").rstrip(".")
+        return CrustflowInputError(
+            f"{self.name}: {self.path} cannot be read ({first}); the file is truncated or corrupt: "
+            "copy or export it again"
+        )
 
     def _align(self, target: GridSource, north_up) -> None:
         from rasterio.enums import Resampling
@@ -182,7 +207,12 @@ class GridSource:
             window = Window(0, self.height - row1, self.width, row1 - row0)
         else:
             window = Window(0, row0, self.width, row1 - row0)
-        data = self._reader.read(1, window=window, masked=True)
+        from rasterio.errors import RasterioError
+
+        try:
+            data = self._reader.read(1, window=window, masked=True)
+        except (RasterioError, OSError) as exc:
+            raise self.read_error(exc) from None
         out = np.ma.filled(data.astype("float64"), np.nan)
         return out[::-1] if self.flipped else out
 
@@ -191,6 +221,22 @@ class GridSource:
         if self._reader is not self._src:
             self._reader.close()
         self._src.close()
+
+
+def _scenario_crs(crs: str, src):
+    """The ``[grids] crs`` of the scenario as a rasterio CRS, or one line naming it."""
+    from rasterio.crs import CRS
+    from rasterio.errors import CRSError
+
+    try:
+        return CRS.from_user_input(crs)
+    except (CRSError, ValueError, TypeError) as exc:
+        src.close()
+        first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        raise CrustflowInputError(
+            f"grids.crs = {crs!r} is not a CRS PROJ knows ({first}); give a valid code, e.g. "
+            'crs = "EPSG:32633"'
+        ) from None
 
 
 def open_sources(scenario) -> dict[str, GridSource]:

@@ -6,6 +6,7 @@ Output folders, their atomic replacement and the run manifest are in :mod:`crust
 from __future__ import annotations
 
 import json
+import warnings
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -24,6 +25,22 @@ __all__ = [
     "NetcdfWriter",
     "GeotiffWriter",
 ]
+
+
+def finite_float32(values: np.ndarray, name: str) -> np.ndarray:
+    """``values`` as float32 for a file; values beyond float32's range (about 3.4e38) become NaN
+    (nodata) with a warning, never infinity."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        data = np.asarray(values).astype("float32")
+        overflow = np.isinf(data)
+    if overflow.any():
+        warnings.warn(
+            f"{Path(str(name)).name}: {int(overflow.sum())} cells exceed the float32 range of the "
+            "output and were written as nodata; check the inputs' units and magnitudes",
+            stacklevel=3,
+        )
+        data[overflow] = np.nan
+    return data
 
 
 def _file_variables(ds: xr.Dataset, variables) -> list[str]:
@@ -127,7 +144,7 @@ class NetcdfWriter:
             if name in self.flags:
                 data = np.where(np.isfinite(values), values, -1).astype("int8")
             else:
-                data = values.astype("float32")
+                data = finite_float32(values, name)
             self.nc.variables[name][row0 : row0 + data.shape[0], :] = data
 
     def close(self) -> None:
@@ -181,7 +198,7 @@ class GeotiffWriter:
         if self.flag:
             data = np.where(np.isfinite(values), values, 255).astype("uint8")
         else:
-            data = values.astype("float32")
+            data = finite_float32(values, self.dst.name)
         self.dst.write(data, 1, window=Window(0, row0, data.shape[1], data.shape[0]))
 
     def close(self) -> None:

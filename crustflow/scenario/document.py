@@ -8,7 +8,6 @@ resolved against the scenario file's folder; unknown keys are errors that sugges
 from __future__ import annotations
 
 import difflib
-import tomllib
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -19,6 +18,7 @@ from crustflow.scenario.ensemble import parse_ensemble
 from crustflow.scenario.fit import FitSpec, parse_fit
 from crustflow.scenario.load import LoadSetup, parse_load
 from crustflow.scenario.parameters import ModelParameters
+from crustflow.scenario.toml import read_toml
 from crustflow.units import parse_quantity, parse_vector
 from crustflow.variables import VARIABLES
 
@@ -360,13 +360,5 @@ def load_scenario(path: str | Path) -> Scenario:
     path = Path(path).expanduser()
     if not path.is_file():
         raise CrustflowInputError(f"scenario file not found: {path}; check the path")
-    try:
-        with path.open("rb") as fh:
-            raw = tomllib.load(fh)
-    except tomllib.TOMLDecodeError as exc:
-        raise CrustflowInputError(
-            f"scenario file {path} is not valid TOML ({exc}); fix the syntax"
-        ) from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise CrustflowInputError(f"cannot read scenario file {path} ({exc})") from None
+    raw = read_toml(path)
     return scenario_from_dict(raw, base_dir=path.parent, source=path.resolve())

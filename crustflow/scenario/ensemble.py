@@ -20,10 +20,8 @@ from crustflow.scenario.ensemble_spec import (
     _Key,
 )
 from crustflow.scenario.parameters import ModelParameters
-from crustflow.units import (
-    _registry,  # the project's one pint registry (parse_quantity's own)
-    parse_quantity,
-)
+from crustflow.units import parse_quantity
+from crustflow.units import quantity as checked_quantity  # the grammar, then pint
 from crustflow.variables import VARIABLES
 
 #: Sampling designs ``[ensemble] sampling`` may name.
@@ -361,7 +359,7 @@ def _parse_threshold(value, key: str, name: str) -> float:
     import pint
 
     try:
-        quantity = _registry().Quantity(value.strip())
+        quantity = checked_quantity(value, key, example)
         practical = float(quantity.to(_PINT_UNITS.get(var.units, var.units)).magnitude)
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
         raise CrustflowInputError(

@@ -25,6 +25,10 @@ _KINDS = {
 }
 
 
+def _sci(value: float) -> str:
+    return f"{value:.0e}".replace("e+", "e")
+
+
 @dataclass(frozen=True)
 class ModelParameters:
     """Scalar model parameters, all in SI units.
@@ -81,6 +85,12 @@ class ModelParameters:
                 raise CrustflowInputError(
                     f"{key} must be positive (got {value:g} in SI); e.g. {example}"
                 )
+        low, high = constants.VISCOSITY_RANGE
+        if self.viscosity is not None and not low <= self.viscosity <= high:
+            raise CrustflowInputError(
+                f"channel.viscosity = {self.viscosity:.3g} Pa s lies outside {_sci(low)}-{_sci(high)} "
+                'Pa s, the range of crustal channels and salt (see the README); e.g. "1e19 Pa*s"'
+            )
         if not self.rho_water >= 0:
             raise CrustflowInputError('densities.water must not be negative; e.g. "1030 kg/m^3"')
         if not self.rho_mantle > max(self.rho_crust, self.rho_channel, self.rho_water):

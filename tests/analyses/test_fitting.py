@@ -642,3 +642,23 @@ def test_forcing_the_fast_path_where_it_does_not_apply_is_an_error(tmp_path):
         CrustflowInputError, match="the fast path does not apply: the channel is power-law"
     ):
         SiteModel(base, [10], [10], ["uplift_rate"], fast=True)
+
+
+def test_a_sampler_too_large_for_memory_is_refused_before_work(tmp_path, capsys, monkeypatch):
+    # The chain of every walker and step is kept (8 bytes per parameter and log-probability):
+    # 10^4 walkers x 10^9 steps cannot fit; refused with exit 2 before any sampling.
+    import crustflow.commands.fit as fit_command
+    from crustflow.cli import main
+
+    base = _base(tmp_path)
+    x, y, u, _, _ = _sites(base, 4)
+    _points(tmp_path / "obs.gpkg", x, y, u / MM_YR, 0.1 * np.abs(u / MM_YR))
+    sampler = "seed = 1\nwalkers = 10000\nsteps = 1000000000\nburn_in = 10\nthin = 1"
+    path = _scenario(tmp_path, ETA, sampler).source
+    monkeypatch.setattr(fit_command, "run_fit", lambda *a, **k: pytest.fail("work started"))
+    out = tmp_path / "out"
+    assert main(["fit", str(path), "--out", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "10000 walkers x 1000000000 steps need at least" in err
+    assert err.endswith("use fewer [fit.sampler] steps or walkers, or a larger thin")
+    assert not out.exists()
