@@ -149,6 +149,7 @@ class MapWriter:
                         transform=grid.transform,
                         height=grid.height,
                         width=grid.width,
+                        variable=n,
                         attrs={
                             "long_name": f"{var.long_name}: percentile {p:g} of {M} ensemble "
                             "members",
