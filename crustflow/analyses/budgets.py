@@ -549,7 +549,14 @@ def safe_name(name: str, taken: set[str]) -> str:
 
 
 def write_budget_outputs(
-    fields: xr.Dataset, folder, *, sections=None, regions=None, title: str = ""
+    fields: xr.Dataset,
+    folder,
+    *,
+    sections=None,
+    regions=None,
+    title: str = "",
+    figure_formats=("png",),
+    figure_dpi: int = 150,
 ) -> list[str]:
     """Write the budgets, the flux arrow layers and their figures into a folder.
 
@@ -563,6 +570,10 @@ def write_budget_outputs(
         Lines and polygons (see :func:`read_features`).
     title : str
         Figure title (default: the fields' ``title`` attribute).
+    figure_formats : sequence of str
+        File formats of the figures (``png``, ``svg``, ``pdf``).
+    figure_dpi : int
+        Resolution of the figures.
 
     Returns
     -------
@@ -570,7 +581,8 @@ def write_budget_outputs(
         Names of the files written, in order: ``budgets.csv`` (always; header only without
         features), ``budgets.gpkg`` (layers ``sections`` and/or ``regions``, when there are
         features), ``flux_arrows.gpkg`` (layers ``arrows`` and ``samples``),
-        ``section_<name>.png`` per section, ``budget_map.png``.
+        ``section_<name>.png`` per section, ``budget_map.png`` (each figure in every one of
+        ``figure_formats``).
 
     Notes
     -----
@@ -615,19 +627,21 @@ def write_budget_outputs(
     title = title or str(fields.attrs.get("title", ""))
     taken: set[str] = set()
     names = frames["sections"]["name"] if "sections" in frames else []
+    options = {"formats": tuple(dict.fromkeys(figure_formats)), "dpi": figure_dpi}
     for name, res in zip(names, results, strict=True):
-        png = f"section_{safe_name(name, taken)}.png"
+        stem = f"section_{safe_name(name, taken)}"
         profile = _profile_frame(grid, res, step)
-        budget_plots.section_figure(profile, folder / png, name=name, title=title)
-        written.append(png)
+        budget_plots.section_figure(profile, folder / stem, name=name, title=title, **options)
+        written += [f"{stem}.{fmt}" for fmt in options["formats"]]
     budget_plots.budget_map(
         fields,
-        folder / "budget_map.png",
+        folder / "budget_map",
         sections=frames.get("sections"),
         regions=frames.get("regions"),
         title=title,
+        **options,
     )
-    written.append("budget_map.png")
+    written += [f"budget_map.{fmt}" for fmt in options["formats"]]
     return written
 
 

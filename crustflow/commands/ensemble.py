@@ -8,6 +8,7 @@ from pathlib import Path
 from crustflow.analyses.ensemble.run import run_ensemble
 from crustflow.errors import CrustflowInputError
 from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
+from crustflow.io.styles import sidecars
 from crustflow.scenario import load_scenario
 
 __all__ = ["ensemble", "ensemble_into"]
@@ -17,8 +18,9 @@ def ensemble_into(scenario, folder: Path, *, progress: bool = False) -> dict:
     """Run the scenario's ensemble into ``folder``; return written files, manifest entries and
     the ensemble's summary."""
     summary = run_ensemble(scenario, scenario.ensemble, folder, progress=progress)
+    written = list(summary.get("written", []))
     return {
-        "written": list(summary.get("written", [])),
+        "written": written + sidecars(folder, written),
         "manifest": summary["manifest"],
         "summary": summary,
     }

@@ -60,7 +60,13 @@ def volume_label(value: float) -> str:
 
 
 def section_figure(
-    profile: pd.DataFrame, path: str | Path, *, name: str, title: str = "", dpi: int = 150
+    profile: pd.DataFrame,
+    path: str | Path,
+    *,
+    name: str,
+    title: str = "",
+    dpi: int = 150,
+    formats=("png",),
 ) -> Path:
     """Plot the normal flux along a section against distance and save it as PNG.
 
@@ -70,17 +76,20 @@ def section_figure(
         From :func:`crustflow.analyses.budgets.section_profile` (``distance_km``, ``normal_flux_m2_per_yr``,
         totals in ``.attrs``).
     path : path
-        Destination PNG.
+        Destination; its suffix is replaced by each of ``formats``.
     name : str
         Section name, for the title.
     title : str
         First title line (e.g. the scenario title).
     dpi : int
         Resolution.
+    formats : sequence of str
+        Figure file formats (``png``, ``svg``, ``pdf``).
 
     Returns
     -------
     Path
+        The first file written.
     """
     from matplotlib import colormaps
 
@@ -114,10 +123,15 @@ def section_figure(
     _caution(
         fig, "Positive: towards the right-hand side walking from the first to the last vertex."
     )
+    return _save(fig, path, formats, dpi)
+
+
+def _save(fig, path, formats, dpi) -> Path:
+    """Save in every format (``path``'s suffix replaced); the path of the first file."""
+    from crustflow.figures.common import save_figure
+
     path = Path(path)
-    fig.savefig(path, dpi=dpi)
-    plt.close(fig)
-    return path
+    return path.parent / save_figure(fig, path.parent, path.stem, formats=formats, dpi=dpi)[0]
 
 
 def budget_map(
@@ -128,6 +142,7 @@ def budget_map(
     regions=None,
     title: str = "",
     dpi: int = 150,
+    formats=("png",),
 ) -> Path:
     """Map the flux magnitude with the sections and regions labelled with their budgets.
 
@@ -154,17 +169,23 @@ def budget_map(
     Each section carries an arrow at its middle pointing to its positive (right-hand) side and a
     label with its volume flux; each region a label with its net inflow.
     """
-    from crustflow.figures.common import arrow_stride, magnitude_image
+    from crustflow.figures.common import arrow_stride
+    from crustflow.figures.furniture import add_image, add_scale_bar, label_axes, map_frame
+    from crustflow.io.colour_ramps import colour_scale
+    from crustflow.io.display import axis_label
 
     plt = _pyplot()
-    geographic = bool(fields.rio.crs is not None and fields.rio.crs.is_geographic)
+    frame = map_frame(fields.x.values, fields.y.values, fields.rio.crs)
+    geographic = frame.geographic
     scale = 1.0 if geographic else 1e-3
-    x, y = fields.x.values * scale, fields.y.values * scale
+    x, y = frame.x, frame.y
     qe = np.asarray(fields["flux_east"].transpose("y", "x").values, dtype=float)
     qn = np.asarray(fields["flux_north"].transpose("y", "x").values, dtype=float)
     mag = np.hypot(qe, qn)
     fig, ax = plt.subplots(figsize=(8, 6.5), layout="constrained")
-    _, extent = magnitude_image(fig, ax, x, y, mag)
+    flux_scale = colour_scale("flux_magnitude", mag)
+    add_image(fig, ax, frame, mag, flux_scale, axis_label("flux_magnitude") + ", log scale")
+    extent = frame.extent
     step = arrow_stride(mag.shape)
     sl = (slice(step // 2, None, step), slice(step // 2, None, step))
     norm = mag[sl]
@@ -209,21 +230,15 @@ def budget_map(
                 clip_on=True,
                 **label,
             )
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
-    ax.set_xlabel("longitude (degrees)" if geographic else "x (km)")
-    ax.set_ylabel("latitude (degrees)" if geographic else "y (km)")
-    ax.set_aspect(1.0 / np.cos(np.deg2rad(np.nanmean(y))) if geographic else "equal")
+    add_scale_bar(ax, frame)
+    label_axes(ax, frame)
     ax.set_title(title or fields.attrs.get("title", "crustflow volume budgets"))
     _caution(
         fig,
         "Sections: volume flux, positive towards the arrow (right-hand side walking from the first "
         "to the last vertex). Regions: net inflow (positive = volume gained).",
     )
-    path = Path(path)
-    fig.savefig(path, dpi=dpi)
-    plt.close(fig)
-    return path
+    return _save(fig, path, formats, dpi)
 
 
 def _rings(geom) -> list[np.ndarray]:

@@ -4,7 +4,12 @@ and the arrow spacing. Colour maps are perceptually uniform (matplotlib's ``civi
 
 from __future__ import annotations
 
-__all__ = ["arrow_stride", "magnitude_image", "pyplot", "add_caution"]
+from pathlib import Path
+
+__all__ = ["arrow_stride", "magnitude_image", "pyplot", "add_caution", "save_figure", "FORMATS"]
+
+#: Figure file formats crustflow writes (matplotlib backends: Agg, SVG, PDF).
+FORMATS = ("png", "svg", "pdf")
 
 #: Share of the figure's height kept free at the foot for the caution line.
 FOOT_SHARE = 0.05
@@ -68,3 +73,50 @@ def magnitude_image(fig, ax, x, y, magnitude, label="channel flux per unit width
     )
     fig.colorbar(image, ax=ax, shrink=0.85).set_label(label)
     return image, extent
+
+
+def save_figure(fig, folder, stem: str, *, formats=("png",), dpi: int = 150) -> list[str]:
+    """Write a figure in every requested format and close it.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    folder : path
+        Destination folder.
+    stem : str
+        File name without suffix (``flux_map`` -> ``flux_map.png``, ``flux_map.svg``, ...).
+    formats : sequence of str
+        Any of :data:`FORMATS`, in the order written.
+    dpi : int
+        Resolution of raster output (PNG; also of images embedded in SVG and PDF). PNG files
+        carry it in their ``pHYs`` chunk.
+
+    Returns
+    -------
+    list of str
+        The file names written, in the order of ``formats``.
+    """
+    plt = pyplot()
+    names = []
+    try:
+        for fmt in dict.fromkeys(formats):
+            if fmt not in FORMATS:
+                raise ValueError(f"figure format {fmt!r} is not one of {', '.join(FORMATS)}")
+            name = f"{stem}.{fmt}"
+            fig.savefig(Path(folder) / name, dpi=dpi, format=fmt, metadata=_metadata(fmt))
+            names.append(name)
+    finally:
+        plt.close(fig)
+    return names
+
+
+def _metadata(fmt: str) -> dict:
+    """File metadata: creator only, and no creation date in SVG/PDF (reproducible files)."""
+    from crustflow._version import __version__
+
+    creator = f"crustflow {__version__}"
+    if fmt == "png":
+        return {"Software": creator}
+    if fmt == "svg":
+        return {"Creator": creator, "Date": None}
+    return {"Creator": creator, "CreationDate": None}

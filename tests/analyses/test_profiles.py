@@ -31,7 +31,9 @@ def _scenario_with(tmp_path, sample: str, extra: str = ""):
     source = demo_scenario(sample)
     text = source.read_text()
     # absolute grid paths, so the copy can live anywhere
-    text = re.sub(r'= "([^"]+\.(tif|geojson))"', lambda m: f'= "{source.parent / m.group(1)}"', text)
+    text = re.sub(
+        r'= "([^"]+\.(tif|geojson))"', lambda m: f'= "{source.parent / m.group(1)}"', text
+    )
     path = tmp_path / f"{sample}.toml"
     path.write_text(text + "\n" + extra)
     return path
