@@ -7,6 +7,7 @@ import time
 from pathlib import Path
 
 from crustflow.commands.common import Stages, check_features, distributed_client, write_budgets
+from crustflow.commands.report import write_report
 from crustflow.engine.strips import run_strips
 from crustflow.io.folders import atomic_folder, base_manifest, write_manifest
 from crustflow.io.styles import sidecars
@@ -115,6 +116,8 @@ def _run_into(scenario, tmp: Path, stages: Stages, strip_rows, budgets, client, 
     }
     if ensemble is not None:
         manifest["ensemble"] = ensemble["manifest"]
+    stages("write report")
+    written.append(write_report(tmp, manifest, result, scenario, written))
     write_manifest(tmp, manifest, written)
     stages.finish()
     return result

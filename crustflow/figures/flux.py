@@ -84,7 +84,11 @@ def _caption(context: dict, key: float) -> str:
     parts = [f"Arrows: flux direction, length proportional to magnitude (key: {key:g} m²/yr)."]
     if context.get("interval"):
         parts.append(f"Grey lines: elevation every {context['interval']:g} m")
-        parts[-1] += "; black line: coastline (0 m)." if context.get("coastline") else "."
+        parts[-1] += (
+            "; black line: coastline (0 m); dashed: below sea level."
+            if context.get("coastline")
+            else "."
+        )
     return " ".join(parts)
 
 

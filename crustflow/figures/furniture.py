@@ -31,8 +31,8 @@ __all__ = [
 #: light from the upper left). Common practice, no source.
 SUN_AZIMUTH, SUN_ALTITUDE = 315.0, 45.0
 
-#: Opacity of the hillshade drawn over the data image. Project choice.
-HILLSHADE_ALPHA = 0.22
+#: Largest opacity of the hillshade drawn over the data image (steep slopes). Project choice.
+HILLSHADE_ALPHA = 0.35
 
 #: Contour lines of elevation drawn on a map at most. Project choice.
 MAX_CONTOURS = 8
@@ -190,11 +190,9 @@ def add_elevation(ax, frame: MapFrame, elevation, *, hillshade: bool = True) -> 
         light = LightSource(azdeg=SUN_AZIMUTH, altdeg=SUN_ALTITUDE)
         shade = light.hillshade(np.nan_to_num(z, nan=0.0), vert_exag=1.0, dx=dx, dy=dy)
         ax.imshow(
-            np.where(np.isfinite(z), shade, np.nan),
+            _shade_overlay(shade, np.isfinite(z)),
             extent=frame.extent,
             origin=frame.origin,
-            cmap="gray",
-            alpha=HILLSHADE_ALPHA,
             interpolation="bilinear",
             zorder=2,
         )
@@ -212,6 +210,18 @@ def add_elevation(ax, frame: MapFrame, elevation, *, hillshade: bool = True) -> 
         ax.contour(frame.x, frame.y, z, levels=[0.0], colors="black", linewidths=1.4, zorder=4)
         out["coastline"] = True
     return out
+
+
+def _shade_overlay(shade: np.ndarray, valid: np.ndarray) -> np.ndarray:
+    """RGBA overlay of a hillshade that leaves flat ground untouched: black where a slope faces
+    away from the light, white where it faces it, opacity growing with the difference from flat
+    ground (whose intensity is sin(sun altitude)), up to :data:`HILLSHADE_ALPHA`."""
+    flat = np.sin(np.deg2rad(SUN_ALTITUDE))
+    diff = np.where(valid, shade - flat, 0.0)
+    rgba = np.zeros(shade.shape + (4,))
+    rgba[..., :3] = (diff > 0)[..., None]
+    rgba[..., 3] = np.clip(np.abs(diff) / flat, 0.0, 1.0) * HILLSHADE_ALPHA * 2.0
+    return rgba
 
 
 def colour_map(scale: ColourScale, name: str = ""):

@@ -70,7 +70,11 @@ def draw_rates_map(ds: xr.Dataset, *, title: str | None = None, hillshade: bool 
     )
     if context.get("interval"):
         note += f" Grey lines: elevation every {context['interval']:g} m"
-        note += "; black line: coastline (0 m)." if context.get("coastline") else "."
+        note += (
+            "; black line: coastline (0 m); dashed: below sea level."
+            if context.get("coastline")
+            else "."
+        )
     add_caution(fig, note)
     return fig
 
