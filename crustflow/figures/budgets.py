@@ -1,6 +1,7 @@
 """Figures of the volume budgets: the normal flux along a section, and a map of all budgets.
 
-Perceptually uniform colour maps (``cividis`` for the flux magnitude, ``viridis`` shades for signs),
+crustflow's own colour ramps (:mod:`crustflow.io.colour_ramps`: log-scaled sequential ramp for the
+flux magnitude, the diverging ramp's ends for the two sides of a section),
 units on every axis and colour bar, matplotlib's Agg backend (no display needed).
 """
 
@@ -91,20 +92,16 @@ def section_figure(
     Path
         The first file written.
     """
-    from matplotlib import colormaps
+    from crustflow.io.colour_ramps import ramp_colours
 
     plt = _pyplot()
-    shades = colormaps["viridis"]
+    ends = ramp_colours("diverging", 256)[[0, -1]]  # blue: to the left, orange: to the right
     dist = profile["distance_km"].to_numpy()
     flux = profile["normal_flux_m2_per_yr"].to_numpy()
     fig, ax = plt.subplots(figsize=(8, 4.5), layout="constrained")
     ax.axhline(0.0, color="0.5", linewidth=0.8)
-    ax.fill_between(
-        dist, flux, 0, where=flux >= 0, color=shades(0.8), alpha=0.7, label="to the right"
-    )
-    ax.fill_between(
-        dist, flux, 0, where=flux < 0, color=shades(0.2), alpha=0.7, label="to the left"
-    )
+    ax.fill_between(dist, flux, 0, where=flux >= 0, color=ends[1], alpha=0.7, label="to the right")
+    ax.fill_between(dist, flux, 0, where=flux < 0, color=ends[0], alpha=0.7, label="to the left")
     ax.plot(dist, flux, color="black", linewidth=1.0)
     ax.set_xlim(0.0, profile.attrs.get("length_km", np.nanmax(dist)))
     ax.set_xlabel("distance along the section from its first vertex (km)")
