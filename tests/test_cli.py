@@ -238,8 +238,9 @@ def test_demo_writes_budgets(demo_run):
     # 1 km^3/Myr = 1000 m^3/yr (unit definition)
     assert np.allclose(table["volume_flux_km3_per_Myr"] * 1000, table["volume_flux_m3_per_yr"])
     layers = gpd.list_layers(demo_run / "budgets.gpkg")["name"].tolist()
-    assert sorted(layers) == ["regions", "sections"]
-    assert sorted(gpd.list_layers(demo_run / "flux_arrows.gpkg")["name"]) == ["arrows", "samples"]
+    assert sorted(layers) == ["layer_styles", "regions", "sections"]
+    arrow_layers = sorted(gpd.list_layers(demo_run / "flux_arrows.gpkg")["name"])
+    assert arrow_layers == ["arrows", "layer_styles", "samples"]
     assert (demo_run / "budget_map.png").is_file()
     assert (demo_run / "section_Varnessa_Scarp.png").is_file()
 

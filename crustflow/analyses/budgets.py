@@ -31,6 +31,7 @@ import xarray as xr
 
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import FULL_TURN, cell_areas
+from crustflow.io.styles import arrow_style, region_style, section_style, write_layer_styles
 from crustflow.io.features import (
     KINDS,
     FieldGrid,
@@ -587,6 +588,8 @@ def write_budget_outputs(
     Notes
     -----
     Layers are in the grid's CRS; their attributes are the CSV columns that apply to the kind.
+    Both GeoPackages carry default layer styles in their ``layer_styles`` table
+    (:func:`crustflow.io.styles.write_layer_styles`; arrows drawn with heads).
     The sign convention is the GeoPackage layer description; the arrow scale
     (``metres_per_m2_per_yr``) is an attribute of every arrow and in the layer's description and
     metadata.
@@ -612,6 +615,7 @@ def write_budget_outputs(
         target.unlink(missing_ok=True)
         for layer, frame in frames.items():
             _write_layer(frame, target, layer, {"DESCRIPTION": POSITIVE_SIDE}, {})
+        write_layer_styles(target, [section_style(), region_style()])
         written.append(target.name)
     arrows, samples = arrow_layers(fields)
     scale = arrows.attrs["metres_per_m2_per_yr"]
@@ -623,6 +627,7 @@ def write_budget_outputs(
     meta = {"metres_per_m2_per_yr": repr(float(scale))}
     _write_layer(arrows, target, "arrows", {"DESCRIPTION": note}, meta, "LineString")
     _write_layer(samples, target, "samples", {"DESCRIPTION": note.split("; ")[1]}, {}, "Point")
+    write_layer_styles(target, [arrow_style()])
     written.append(target.name)
     title = title or str(fields.attrs.get("title", ""))
     taken: set[str] = set()
