@@ -31,7 +31,6 @@ import xarray as xr
 
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import FULL_TURN, cell_areas
-from crustflow.io.styles import arrow_style, region_style, section_style, write_layer_styles
 from crustflow.io.features import (
     KINDS,
     FieldGrid,
@@ -43,6 +42,7 @@ from crustflow.io.features import (
     read_features,
     walk,
 )
+from crustflow.io.styles import arrow_style, region_style, section_style, write_layer_styles
 
 __all__ = [
     "read_features",
