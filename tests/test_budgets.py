@@ -375,7 +375,14 @@ def test_outputs_read_back(tmp_path, projected_plateau):
     samples = gpd.read_file(folder / "flux_arrows.gpkg", layer="samples")
     assert arrows.crs == samples.crs == pyproj.CRS(UTM)
     assert set(arrows.geom_type) == {"LineString"} and set(samples.geom_type) == {"Point"}
-    fields = ["flux_east", "flux_north", "flux_magnitude", "flux_azimuth", "mean_speed"]
+    fields = [
+        "flux_east",
+        "flux_north",
+        "flux_magnitude",
+        "flux_azimuth",
+        "grid_azimuth",
+        "mean_speed",
+    ]
     assert [c for c in samples.columns if c != "geometry"] == fields
     assert all(samples[c].dtype == "float64" for c in fields)
     scale = arrows.metres_per_m2_per_yr.iloc[0]
