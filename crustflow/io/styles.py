@@ -25,6 +25,7 @@ from crustflow.io.display import display_units
 __all__ = [
     "PREVIEW_CELLS",
     "finish_geotiff",
+    "BandStatistics",
     "sidecars",
     "raster_qml",
     "preview_sample",
@@ -55,37 +56,68 @@ def preview_step(height: int, width: int, cells: int = PREVIEW_CELLS) -> int:
     return max(1, -(-max(height, width) // cells))
 
 
-def _stream_statistics(dst, step: int, nodata) -> tuple[dict, np.ndarray]:
-    """Min, max, mean, sd, valid share over the band (windows of rows) and the decimated sample
-    (rows ``0::step``, columns ``step//2::step``, as the run's figure)."""
+class BandStatistics:
+    """Statistics of a band folded in a block of rows at a time: count, min, max, mean, standard
+    deviation (``STATISTICS_*`` tags), and the decimated sample (rows ``0::step``, columns
+    ``step//2::step`` of the whole band, as the run's figure) that sets the colour limits.
+
+    Rows must arrive in order; NaN marks nodata.
+    """
+
+    def __init__(self, height: int, width: int) -> None:
+        self.shape = (height, width)
+        self.step = preview_step(height, width)
+        self.n, self.total, self.total2 = 0, 0.0, 0.0
+        self.low, self.high = np.inf, -np.inf
+        self._sample: list[np.ndarray] = []
+
+    def add(self, r0: int, block: np.ndarray) -> None:
+        """Fold in rows ``r0 : r0 + len(block)``."""
+        block = np.asarray(block, dtype="float64")
+        step = self.step
+        self._sample.append(block[(-r0) % step :: step, step // 2 :: step])
+        v = block[np.isfinite(block)]
+        if v.size:
+            self.n += v.size
+            self.total += float(v.sum())
+            self.total2 += float((v * v).sum())
+            self.low, self.high = min(self.low, float(v.min())), max(self.high, float(v.max()))
+
+    @property
+    def sample(self) -> np.ndarray:
+        """The decimated sample (float64, NaN nodata)."""
+        if not self._sample:
+            return np.empty((0, 0))
+        return np.concatenate(self._sample, axis=0)
+
+    def tags(self) -> dict:
+        """GDAL's ``STATISTICS_*`` band tags (only the valid share when no cell has data)."""
+        height, width = self.shape
+        out = {"STATISTICS_VALID_PERCENT": repr(100.0 * self.n / max(height * width, 1))}
+        if self.n:
+            mean = self.total / self.n
+            out.update(
+                STATISTICS_MINIMUM=repr(self.low),
+                STATISTICS_MAXIMUM=repr(self.high),
+                STATISTICS_MEAN=repr(mean),
+                STATISTICS_STDDEV=repr(float(np.sqrt(max(self.total2 / self.n - mean**2, 0.0)))),
+            )
+        return out
+
+
+def _read_statistics(dst) -> BandStatistics:
+    """:class:`BandStatistics` of an open band, read :data:`STAT_ROWS` rows at a time."""
     from rasterio.windows import Window
 
-    n, total, total2 = 0, 0.0, 0.0
-    low, high = np.inf, -np.inf
-    sample = []
+    stats = BandStatistics(dst.height, dst.width)
+    nodata = dst.nodata
     for r0 in range(0, dst.height, STAT_ROWS):
         rows = min(STAT_ROWS, dst.height - r0)
         block = dst.read(1, window=Window(0, r0, dst.width, rows)).astype("float64")
         if nodata is not None and not np.isnan(nodata):
             block[block == nodata] = np.nan
-        sample.append(block[(-r0) % step :: step, step // 2 :: step])
-        v = block[np.isfinite(block)]
-        if v.size:
-            n += v.size
-            total += float(v.sum())
-            total2 += float((v * v).sum())
-            low, high = min(low, float(v.min())), max(high, float(v.max()))
-    stats = {}
-    if n:
-        mean = total / n
-        stats = {
-            "STATISTICS_MINIMUM": repr(low),
-            "STATISTICS_MAXIMUM": repr(high),
-            "STATISTICS_MEAN": repr(mean),
-            "STATISTICS_STDDEV": repr(float(np.sqrt(max(total2 / n - mean * mean, 0.0)))),
-        }
-    stats["STATISTICS_VALID_PERCENT"] = repr(100.0 * n / max(dst.height * dst.width, 1))
-    return stats, np.concatenate(sample, axis=0)
+        stats.add(r0, block)
+    return stats
 
 
 def overview_factors(height: int, width: int) -> list[int]:
@@ -103,12 +135,16 @@ def preview_sample(path: str | Path) -> np.ndarray:
     import rasterio
 
     with rasterio.open(path) as src:
-        _, sample = _stream_statistics(src, preview_step(src.height, src.width), src.nodata)
-    return sample
+        return _read_statistics(src).sample
 
 
 def finish_geotiff(
-    path: str | Path, *, variable: str, attrs: dict, scale: ColourScale | None = None
+    path: str | Path,
+    *,
+    variable: str,
+    attrs: dict,
+    scale: ColourScale | None = None,
+    statistics: BandStatistics | None = None,
 ) -> list[str]:
     """Add statistics and overviews to a closed GeoTIFF and write its ``.qml`` sidecar.
 
@@ -122,6 +158,8 @@ def finish_geotiff(
         ``long_name``, ``units`` and, for flags, ``flag_meanings``.
     scale : ColourScale, optional
         Colours and limits to use instead of those from the raster's decimated sample.
+    statistics : BandStatistics, optional
+        Gathered while the rows were written (saves reading the band back).
 
     Returns
     -------
@@ -130,8 +168,8 @@ def finish_geotiff(
 
     Notes
     -----
-    Memory stays bounded: the band is read a window of :data:`STAT_ROWS` rows at a time, and GDAL
-    builds the overviews from the file. Continuous variables use average resampling (the mean of
+    Memory stays bounded: statistics come from the writer (or the band is read back
+    :data:`STAT_ROWS` rows at a time), and GDAL builds the overviews from the file. Continuous variables use average resampling (the mean of
     the valid cells; nearest would alias), flags nearest.
     """
     import rasterio
@@ -140,8 +178,9 @@ def finish_geotiff(
     path = Path(path)
     flag = "flag_meanings" in attrs
     with rasterio.Env(COMPRESS_OVERVIEW="DEFLATE"), rasterio.open(path, "r+") as dst:
-        stats, sample = _stream_statistics(dst, preview_step(dst.height, dst.width), dst.nodata)
-        dst.update_tags(1, **stats)
+        stats = statistics if statistics is not None else _read_statistics(dst)
+        sample = stats.sample
+        dst.update_tags(1, **stats.tags())
         factors = overview_factors(dst.height, dst.width)
         method = Resampling.nearest if flag else Resampling.average
         if factors:

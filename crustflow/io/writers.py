@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from crustflow.io.colour_ramps import flag_categories
-from crustflow.io.styles import finish_geotiff
+from crustflow.io.styles import BandStatistics, finish_geotiff
 
 if TYPE_CHECKING:
     import xarray as xr
@@ -152,6 +152,7 @@ class GeotiffWriter:
 
         self.path, self.attrs = Path(path), dict(attrs)
         self.variable = variable or self.path.stem
+        self.statistics = BandStatistics(height, width)
         self.flag = "flag_values" in attrs
         if self.flag:
             dtype, nodata, predictor = "uint8", 255, 2
@@ -188,9 +189,11 @@ class GeotiffWriter:
         from rasterio.windows import Window
 
         if self.flag:
+            self.statistics.add(row0, values)
             data = np.where(np.isfinite(values), values, 255).astype("uint8")
         else:
             data = values.astype("float32")
+            self.statistics.add(row0, data)  # the numbers as stored
         self.dst.write(data, 1, window=Window(0, row0, data.shape[1], data.shape[0]))
 
     def close(self) -> None:
@@ -198,7 +201,9 @@ class GeotiffWriter:
         if self.dst.closed:
             return
         self.dst.close()
-        finish_geotiff(self.path, variable=self.variable, attrs=self.attrs)
+        finish_geotiff(
+            self.path, variable=self.variable, attrs=self.attrs, statistics=self.statistics
+        )
 
 
 def _flag_colour_table(dst, variable: str, attrs: dict) -> None:
