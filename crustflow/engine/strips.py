@@ -428,7 +428,8 @@ class _Summary:
         if self.plan.make_figure:
             first, step = (-r0) % self.step, self.step
             for n in FIGURE_VARIABLES:
-                self.figure_rows[n].append(out[n][first::step, step // 2 :: step])
+                # copies: views would keep every strip's arrays alive until the run ends
+                self.figure_rows[n].append(out[n][first::step, step // 2 :: step].copy())
 
     def result(self, *, written, provenance, excluded, whole, budget_fields, title) -> dict:
         """The run's summary dict (see :func:`run_strips`)."""

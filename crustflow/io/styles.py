@@ -75,7 +75,8 @@ class BandStatistics:
         """Fold in rows ``r0 : r0 + len(block)``."""
         block = np.asarray(block, dtype="float64")
         step = self.step
-        self._sample.append(block[(-r0) % step :: step, step // 2 :: step])
+        # a copy: a view would keep the whole block alive until the end
+        self._sample.append(block[(-r0) % step :: step, step // 2 :: step].copy())
         v = block[np.isfinite(block)]
         if v.size:
             self.n += v.size

@@ -250,13 +250,14 @@ class MapWriter:
                     self.tifs[n, p].write_rows(r0, pct[k])
             lo, mid, hi = (pct[k] for k in self.figure_pick)
             first, s = (-r0) % self.step, self.step
-            self.figure_rows[f"{n}:median"].append(mid[first::s, s // 2 :: s])
+            # copies: views would keep each strip's percentile stack alive until the end
+            self.figure_rows[f"{n}:median"].append(mid[first::s, s // 2 :: s].copy())
             self.figure_rows[f"{n}:spread"].append((hi - lo)[first::s, s // 2 :: s])
         exc = self.spec.exceedance_variable
         if exc is not None:
             values = maps[exc]["exceedance"].reshape(-1, *shape)
             first, s = (-r0) % self.step, self.step
-            self.figure_rows["exceedance"].append(values[:, first::s, s // 2 :: s])
+            self.figure_rows["exceedance"].append(values[:, first::s, s // 2 :: s].copy())
             if self.nc is not None:
                 self.nc.nc.variables[f"{exc}_exceedance"][:, r0:r1, :] = values.astype("float32")
 
