@@ -170,8 +170,9 @@ def finish_geotiff(
     Notes
     -----
     Memory stays bounded: statistics come from the writer (or the band is read back
-    :data:`STAT_ROWS` rows at a time), and GDAL builds the overviews from the file. Continuous variables use average resampling (the mean of
-    the valid cells; nearest would alias), flags nearest.
+    :data:`STAT_ROWS` rows at a time), and GDAL builds the overviews from the file. Continuous
+    variables use average resampling (the mean of the valid cells; nearest would alias), flags
+    nearest.
     """
     import rasterio
     from rasterio.enums import Resampling
