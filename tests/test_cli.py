@@ -99,7 +99,8 @@ def test_output_selection(scenario_dir):
     (scenario_dir / "sel.toml").write_text(text)
     out = scenario_dir / "sel_out"
     assert main(["run", str(scenario_dir / "sel.toml"), "--out", str(out), "--quiet"]) == 0
-    assert sorted(p.name for p in out.iterdir()) == ["flux_east.tif", "run.json"]
+    names = sorted(p.name for p in out.iterdir())
+    assert names == ["flux_east.qml", "flux_east.tif", "report.html", "run.json"]
 
 
 def test_check_command(scenario_dir, capsys):
