@@ -129,11 +129,11 @@ def test_ensemble_figures_name_every_panel():
 
 def test_save_figure_writes_every_format_at_the_dpi(tmp_path):
     names = save_figure(
-        draw_rates_map(_fields()), tmp_path, "rates_map", formats=("png", "svg", "pdf"), dpi=200
+        draw_rates_map(_fields()), tmp_path, "rates_map", formats=("png", "svg", "pdf"), dpi=72
     )
     assert names == ["rates_map.png", "rates_map.svg", "rates_map.pdf"]
     with Image.open(tmp_path / "rates_map.png") as img:
-        assert img.info["dpi"] == pytest.approx((200, 200), abs=0.01)
+        assert img.info["dpi"] == pytest.approx((72, 72), abs=0.01)
     assert ET.parse(tmp_path / "rates_map.svg").getroot().tag.endswith("svg")
     assert (tmp_path / "rates_map.pdf").read_bytes().startswith(b"%PDF")
     with pytest.raises(ValueError, match="figure format 'tiff' is not one of png, svg, pdf"):
