@@ -227,7 +227,7 @@ def budget_map(
                 clip_on=True,
                 **label,
             )
-    add_scale_bar(ax, frame)
+    add_scale_bar(ax, frame, corner="right")  # region labels tend to sit lower left
     label_axes(ax, frame)
     ax.set_title(title or fields.attrs.get("title", "crustflow volume budgets"))
     _caution(

@@ -140,8 +140,8 @@ def _km_per_degree_east(frame: MapFrame) -> float:
     return dist / M_PER_KM
 
 
-def add_scale_bar(ax, frame: MapFrame) -> float:
-    """A scale bar in the lower left corner; returns its length in km.
+def add_scale_bar(ax, frame: MapFrame, *, corner: str = "left") -> float:
+    """A scale bar in the lower ``corner`` (``"left"`` or ``"right"``); returns its length in km.
 
     On projected grids the bar measures grid distance (km of the CRS); on geographic grids the
     ground distance along the map's middle parallel on the CRS's ellipsoid (``pyproj.Geod``).
@@ -150,6 +150,8 @@ def add_scale_bar(ax, frame: MapFrame) -> float:
     km = nice_number(SCALE_BAR_SHARE * frame.width * per_unit)
     length = km / per_unit
     x0 = frame.extent[0] + 0.05 * frame.width
+    if corner == "right":
+        x0 = frame.extent[1] - 0.05 * frame.width - length
     height = frame.extent[3] - frame.extent[2]
     y0 = frame.extent[2] + 0.06 * height
     for colour, lw in (("white", 5.0), ("black", 2.5)):
