@@ -49,3 +49,30 @@ def test_formats_and_dpi_are_read():
 def test_bad_figure_options_name_the_fix(output, message):
     with pytest.raises(CrustflowInputError, match=message):
         _scenario(**output)
+
+
+def test_profile_command_honours_figure_formats_and_dpi(tmp_path):
+    # Every command's figures follow [output]: here `crustflow profile` on the invented plateau.
+    import re
+    import xml.etree.ElementTree as ET
+
+    from crustflow.cli import main
+    from crustflow.samples import demo_scenario
+
+    source = demo_scenario("plateau")
+    text = re.sub(
+        r'= "([^"]+\.(tif|geojson))"',
+        lambda m: f'= "{source.parent / m.group(1)}"',
+        source.read_text(),
+    )
+    scenario = tmp_path / "plateau.toml"
+    scenario.write_text(text + '\n[output]\nfigure_formats = ["svg", "pdf"]\nfigure_dpi = 90\n')
+    out = tmp_path / "out"
+    args = ["profile", str(scenario), "--at", "400000", "3700000", "--out", str(out), "--quiet"]
+    assert main(args) == 0
+    names = sorted(p.name for p in out.iterdir())
+    assert [n for n in names if n.endswith(".png")] == []
+    (svg,) = [n for n in names if n.endswith(".svg")]
+    (pdf,) = [n for n in names if n.endswith(".pdf")]
+    assert ET.parse(out / svg).getroot().tag.endswith("svg")
+    assert (out / pdf).read_bytes().startswith(b"%PDF")
