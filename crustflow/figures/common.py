@@ -1,10 +1,14 @@
 """What every figure shares: matplotlib without a display, the caution footer, the magnitude image
-and the arrow spacing. Colour maps are perceptually uniform (matplotlib's ``cividis``).
+the arrow spacing, and saving a figure in every requested format. Colours are crustflow's own ramps
+(:mod:`crustflow.io.colour_ramps`); map furniture is in :mod:`crustflow.figures.furniture`.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
+
+from crustflow.figures.furniture import colour_map
+from crustflow.io.colour_ramps import ColourScale
 
 __all__ = ["arrow_stride", "magnitude_image", "pyplot", "add_caution", "save_figure", "FORMATS"]
 
@@ -44,7 +48,8 @@ def add_caution(fig, text: str = "", *, foot: float = FOOT_SHARE) -> None:
 
 
 def magnitude_image(fig, ax, x, y, magnitude, label="channel flux per unit width (m²/yr)"):
-    """Draw a map of flux magnitude (cividis, cell-exact extent) with its colour bar.
+    """Draw a map of flux magnitude (crustflow's sequential ramp, linear, cell-exact extent) with its
+    colour bar. Kept for scripts; the run's maps use :mod:`crustflow.figures.furniture`.
 
     Parameters
     ----------
@@ -68,7 +73,7 @@ def magnitude_image(fig, ax, x, y, magnitude, label="channel flux per unit width
         magnitude,
         extent=extent,
         origin="upper" if y[0] > y[-1] else "lower",
-        cmap="cividis",
+        cmap=colour_map(ColourScale("sequential", 0.0, 1.0)),
         interpolation="nearest",
     )
     fig.colorbar(image, ax=ax, shrink=0.85).set_label(label)
