@@ -1,4 +1,4 @@
-"""What every figure shares: matplotlib without a display, the caution footer, the magnitude image
+"""What every figure shares: matplotlib without a display, the caution footer, the magnitude image,
 the arrow spacing, and saving a figure in every requested format. Colours are crustflow's own ramps
 (:mod:`crustflow.io.colour_ramps`); map furniture is in :mod:`crustflow.figures.furniture`.
 """
