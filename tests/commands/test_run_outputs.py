@@ -243,3 +243,17 @@ def test_report_renders_in_headless_chromium(plateau_run, tmp_path):
     with Image.open(shot) as img:
         grey = np.asarray(img.convert("L"))
     assert grey.shape == (900, 1366) and np.unique(grey).size > 10  # not a blank page
+    # ... and prints (the print style sheet applies): a PDF of several pages.
+    pdf = tmp_path / "report.pdf"
+    subprocess.run(
+        flags
+        + [
+            "--no-pdf-header-footer",
+            f"--print-to-pdf={pdf}",
+            (plateau_run / "report.html").as_uri(),
+        ],
+        capture_output=True,
+        timeout=120,
+    )
+    data = pdf.read_bytes()
+    assert data.startswith(b"%PDF") and len(re.findall(rb"/Type\s*/Page[^s]", data)) > 1
