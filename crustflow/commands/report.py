@@ -15,7 +15,7 @@ import numpy as np
 
 from crustflow.commands import report_page as page
 from crustflow.io.display import display_name, display_units
-from crustflow.io.styles import preview_sample
+from crustflow.io.styles import SAMPLE_MEDIAN_TAG, preview_sample
 from crustflow.variables import CAUTION, VARIABLES
 
 __all__ = ["write_report", "REPORT", "figure_caption"]
@@ -96,9 +96,12 @@ def _variable_rows(folder: Path, written: list[str], ranges: dict) -> list[list]
         if f"{name}.tif" in written and tif.is_file():
             with rasterio.open(tif) as src:
                 tags = src.tags(1)
-            sample = preview_sample(tif)
-            finite = sample[np.isfinite(sample)]
-            median = float(np.median(finite)) if finite.size else None
+            if SAMPLE_MEDIAN_TAG in tags:  # written by the GeoTIFF writer: no read-back
+                median = float(tags[SAMPLE_MEDIAN_TAG])
+            else:
+                sample = preview_sample(tif)
+                finite = sample[np.isfinite(sample)]
+                median = float(np.median(finite)) if finite.size else None
             low, high = (
                 float(tags[f"STATISTICS_{k}"]) if f"STATISTICS_{k}" in tags else None
                 for k in ("MINIMUM", "MAXIMUM")

@@ -15,6 +15,7 @@ from crustflow.figures.furniture import (
     add_elevation,
     add_image,
     add_scale_bar,
+    elevation_caption,
     label_axes,
     map_frame,
 )
@@ -82,13 +83,7 @@ def draw_flux_map(
 
 def _caption(context: dict, key: float) -> str:
     parts = [f"Arrows: flux direction, length proportional to magnitude (key: {key:g} m²/yr)."]
-    if context.get("interval"):
-        parts.append(f"Grey lines: elevation every {context['interval']:g} m")
-        parts[-1] += (
-            "; black line: coastline (0 m); dashed: below sea level."
-            if context.get("coastline")
-            else "."
-        )
+    parts.append(elevation_caption(context))
     return " ".join(parts)
 
 

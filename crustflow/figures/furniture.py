@@ -25,6 +25,7 @@ __all__ = [
     "nice_number",
     "colour_map",
     "colour_norm",
+    "elevation_caption",
 ]
 
 #: Hillshade light: azimuth and altitude of the sun, degrees (the cartographic convention of a
@@ -175,7 +176,8 @@ def add_elevation(ax, frame: MapFrame, elevation, *, hillshade: bool = True) -> 
     Returns
     -------
     dict
-        ``interval`` (m between contours), ``coastline`` (bool: drawn) and ``hillshade`` (bool).
+        ``interval`` (m between contours), ``coastline`` (bool: drawn), ``below_sea_level``
+        (bool: dashed contours drawn) and ``hillshade`` (bool).
     """
     from matplotlib.colors import LightSource
 
@@ -208,6 +210,7 @@ def add_elevation(ax, frame: MapFrame, elevation, *, hillshade: bool = True) -> 
             frame.x, frame.y, z, levels=levels, colors="0.15", linewidths=0.4, alpha=0.6, zorder=3
         )
     out["interval"] = interval
+    out["below_sea_level"] = bool(low < 0.0)
     if low < 0.0 < high:
         ax.contour(frame.x, frame.y, z, levels=[0.0], colors="black", linewidths=1.4, zorder=4)
         out["coastline"] = True
@@ -224,6 +227,18 @@ def _shade_overlay(shade: np.ndarray, valid: np.ndarray) -> np.ndarray:
     rgba[..., :3] = (diff > 0)[..., None]
     rgba[..., 3] = np.clip(np.abs(diff) / flat, 0.0, 1.0) * HILLSHADE_ALPHA * 2.0
     return rgba
+
+
+def elevation_caption(context: dict) -> str:
+    """The caption sentence for what :func:`add_elevation` drew ("" if nothing)."""
+    if not context.get("interval"):
+        return ""
+    text = f"Grey lines: elevation every {context['interval']:g} m"
+    if context.get("coastline"):
+        text += "; black line: coastline (0 m)"
+    if context.get("below_sea_level"):
+        text += "; dashed: below sea level"
+    return text + "."
 
 
 def colour_map(scale: ColourScale, name: str = ""):

@@ -17,6 +17,7 @@ from crustflow.figures.furniture import (
     add_elevation,
     add_image,
     add_scale_bar,
+    elevation_caption,
     label_axes,
     map_frame,
 )
@@ -68,13 +69,7 @@ def draw_rates_map(ds: xr.Dataset, *, title: str | None = None, hillshade: bool 
         f"Colours centred on zero, limits ±{ROBUST_PERCENTILE:g}th percentile of |value| "
         "(cells beyond them take the end colours). Positive: thickening / rising."
     )
-    if context.get("interval"):
-        note += f" Grey lines: elevation every {context['interval']:g} m"
-        note += (
-            "; black line: coastline (0 m); dashed: below sea level."
-            if context.get("coastline")
-            else "."
-        )
+    note = f"{note} {elevation_caption(context)}".strip()
     add_caution(fig, note)
     return fig
 

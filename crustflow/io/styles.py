@@ -24,6 +24,7 @@ from crustflow.io.display import display_units
 
 __all__ = [
     "PREVIEW_CELLS",
+    "SAMPLE_MEDIAN_TAG",
     "finish_geotiff",
     "BandStatistics",
     "sidecars",
@@ -43,6 +44,9 @@ PREVIEW_CELLS = 800
 #: Overviews are added while the coarser level keeps at least this many cells on its longer
 #: side. Common practice, no source.
 OVERVIEW_MIN_CELLS = 64
+
+#: Band tags holding the median of the decimated sample and its decimation step.
+SAMPLE_MEDIAN_TAG, SAMPLE_STEP_TAG = "crustflow_sample_median", "crustflow_sample_step"
 
 #: Rows read at a time when computing statistics (bounded memory).
 STAT_ROWS = 256
@@ -121,6 +125,15 @@ def _read_statistics(dst) -> BandStatistics:
     return stats
 
 
+def _sample_tags(sample: np.ndarray, step: int) -> dict:
+    """Median of the decimated sample and its step, as band tags (read by the run's report)."""
+    finite = sample[np.isfinite(sample)]
+    tags = {SAMPLE_STEP_TAG: str(step)}
+    if finite.size:
+        tags[SAMPLE_MEDIAN_TAG] = repr(float(np.median(finite)))
+    return tags
+
+
 def overview_factors(height: int, width: int) -> list[int]:
     """Overview decimation factors 2, 4, 8, ... while the level keeps
     :data:`OVERVIEW_MIN_CELLS` cells on its longer side."""
@@ -182,7 +195,7 @@ def finish_geotiff(
     with rasterio.Env(COMPRESS_OVERVIEW="DEFLATE"), rasterio.open(path, "r+") as dst:
         stats = statistics if statistics is not None else _read_statistics(dst)
         sample = stats.sample
-        dst.update_tags(1, **stats.tags())
+        dst.update_tags(1, **stats.tags(), **_sample_tags(sample, stats.step))
         factors = overview_factors(dst.height, dst.width)
         method = Resampling.nearest if flag else Resampling.average
         if factors:

@@ -87,6 +87,8 @@ def test_geotiff_statistics_equal_numpy(rate_tif):
     assert float(tags["STATISTICS_MEAN"]) == pytest.approx(v.mean(), rel=1e-9)
     assert float(tags["STATISTICS_STDDEV"]) == pytest.approx(v.std(), rel=1e-6)
     assert float(tags["STATISTICS_VALID_PERCENT"]) == pytest.approx(100 * v.size / data.size)
+    sample = preview_sample(path)  # read back from the file: the writer's sample is the same
+    assert float(tags["crustflow_sample_median"]) == np.median(sample[np.isfinite(sample)])
 
 
 def test_continuous_overviews_average_the_cells(rate_tif):
