@@ -43,6 +43,7 @@ from crustflow.io.features import (
     read_features,
     walk,
 )
+from crustflow.io.styles import arrow_style, region_style, section_style, write_layer_styles
 
 __all__ = [
     "read_features",
@@ -550,7 +551,14 @@ def safe_name(name: str, taken: set[str]) -> str:
 
 
 def write_budget_outputs(
-    fields: xr.Dataset, folder, *, sections=None, regions=None, title: str = ""
+    fields: xr.Dataset,
+    folder,
+    *,
+    sections=None,
+    regions=None,
+    title: str = "",
+    figure_formats=("png",),
+    figure_dpi: int = 150,
 ) -> list[str]:
     """Write the budgets, the flux arrow layers and their figures into a folder.
 
@@ -564,6 +572,10 @@ def write_budget_outputs(
         Lines and polygons (see :func:`read_features`).
     title : str
         Figure title (default: the fields' ``title`` attribute).
+    figure_formats : sequence of str
+        File formats of the figures (``png``, ``svg``, ``pdf``).
+    figure_dpi : int
+        Resolution of the figures.
 
     Returns
     -------
@@ -571,11 +583,14 @@ def write_budget_outputs(
         Names of the files written, in order: ``budgets.csv`` (always; header only without
         features), ``budgets.gpkg`` (layers ``sections`` and/or ``regions``, when there are
         features), ``flux_arrows.gpkg`` (layers ``arrows`` and ``samples``),
-        ``section_<name>.png`` per section, ``budget_map.png``.
+        ``section_<name>.png`` per section, ``budget_map.png`` (each figure in every one of
+        ``figure_formats``).
 
     Notes
     -----
     Layers are in the grid's CRS; their attributes are the CSV columns that apply to the kind.
+    Both GeoPackages carry default layer styles in their ``layer_styles`` table
+    (:func:`crustflow.io.styles.write_layer_styles`; arrows drawn with heads).
     The sign convention is the GeoPackage layer description; the arrow scale
     (``metres_per_m2_per_yr``) is an attribute of every arrow and in the layer's description and
     metadata.
@@ -600,6 +615,7 @@ def write_budget_outputs(
         target.unlink(missing_ok=True)
         for layer, frame in frames.items():
             _write_layer(frame, target, layer, {"DESCRIPTION": POSITIVE_SIDE}, {})
+        write_layer_styles(target, [section_style(), region_style()])
         written.append(target.name)
     arrows, samples = arrow_layers(fields)
     scale = arrows.attrs["metres_per_m2_per_yr"]
@@ -611,23 +627,26 @@ def write_budget_outputs(
     meta = {"metres_per_m2_per_yr": repr(float(scale))}
     _write_layer(arrows, target, "arrows", {"DESCRIPTION": note}, meta, "LineString")
     _write_layer(samples, target, "samples", {"DESCRIPTION": note.split("; ")[1]}, {}, "Point")
+    write_layer_styles(target, [arrow_style()])
     written.append(target.name)
     title = title or str(fields.attrs.get("title", ""))
     taken: set[str] = set()
     names = frames["sections"]["name"] if "sections" in frames else []
+    options = {"formats": tuple(dict.fromkeys(figure_formats)), "dpi": figure_dpi}
     for name, res in zip(names, results, strict=True):
-        png = f"section_{safe_name(name, taken)}.png"
+        stem = f"section_{safe_name(name, taken)}"
         profile = _profile_frame(grid, res, step)
-        budget_plots.section_figure(profile, folder / png, name=name, title=title)
-        written.append(png)
+        budget_plots.section_figure(profile, folder / stem, name=name, title=title, **options)
+        written += [f"{stem}.{fmt}" for fmt in options["formats"]]
     budget_plots.budget_map(
         fields,
-        folder / "budget_map.png",
+        folder / "budget_map",
         sections=frames.get("sections"),
         regions=frames.get("regions"),
         title=title,
+        **options,
     )
-    written.append("budget_map.png")
+    written += [f"budget_map.{fmt}" for fmt in options["formats"]]
     return written
 
 

@@ -204,8 +204,9 @@ def _label(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", text).strip("_") or "site"
 
 
-def write_profile_outputs(ds: xr.Dataset, folder, *, dpi: int = 120) -> list[str]:
-    """``profile_<label>.csv`` and ``profile_<label>.png`` for every site; returns file names."""
+def write_profile_outputs(ds: xr.Dataset, folder, *, dpi: int = 120, formats=("png",)) -> list[str]:
+    """``profile_<label>.csv`` and the figure ``profile_<label>.<format>`` (each of ``formats``:
+    png, svg, pdf) for every site; returns file names."""
     folder = Path(folder)
     written = []
     taken: set[str] = set()
@@ -227,6 +228,7 @@ def write_profile_outputs(ds: xr.Dataset, folder, *, dpi: int = 120) -> list[str
         }
         frame = xr.Dataset({k: ("sample", v.values) for k, v in columns.items()}).to_pandas()
         frame.to_csv(folder / f"profile_{label}.csv", index=False)
-        profile_figure(s, folder / f"profile_{label}.png", dpi=dpi)
-        written += [f"profile_{label}.csv", f"profile_{label}.png"]
+        formats = tuple(dict.fromkeys(formats))
+        profile_figure(s, folder / f"profile_{label}.png", dpi=dpi, formats=formats)
+        written += [f"profile_{label}.csv"] + [f"profile_{label}.{f}" for f in formats]
     return written

@@ -88,6 +88,12 @@ def write_budgets(fields_path: Path, folder: Path, scenario):
     with xr.open_dataset(fields_path, decode_coords="all") as fields:
         fields = fields.load()
     files = write_budget_outputs(
-        fields, folder, sections=scenario.sections, regions=scenario.regions, title=scenario.title
+        fields,
+        folder,
+        sections=scenario.sections,
+        regions=scenario.regions,
+        title=scenario.title,
+        figure_formats=scenario.figure_formats,
+        figure_dpi=scenario.figure_dpi,
     )
     return pd.read_csv(folder / "budgets.csv"), files

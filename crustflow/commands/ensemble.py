@@ -15,6 +15,7 @@ from crustflow.io.folders import (
     protected_inputs,
     write_manifest,
 )
+from crustflow.io.styles import sidecars
 from crustflow.scenario import load_scenario
 
 __all__ = ["ensemble", "ensemble_into"]
@@ -24,8 +25,9 @@ def ensemble_into(scenario, folder: Path, *, progress: bool = False) -> dict:
     """Run the scenario's ensemble into ``folder``; return written files, manifest entries and
     the ensemble's summary."""
     summary = run_ensemble(scenario, scenario.ensemble, folder, progress=progress)
+    written = list(summary.get("written", []))
     return {
-        "written": list(summary.get("written", [])),
+        "written": written + sidecars(folder, written),
         "manifest": summary["manifest"],
         "summary": summary,
     }

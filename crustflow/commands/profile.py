@@ -33,7 +33,9 @@ def profile(scenario_path: Path, out: Path, *, at=None, points=None, crs=None):
         sites = read_points(points)
     ds = velocity_profiles(scenario, sites)
     with atomic_folder(out, inputs) as tmp:
-        files = write_profile_outputs(ds, tmp)
+        files = write_profile_outputs(
+            ds, tmp, dpi=scenario.figure_dpi, formats=scenario.figure_formats
+        )
         write_manifest(tmp, base_manifest(scenario, {}), files)
     ds.attrs["folder"] = str(Path(out).expanduser().resolve())
     return ds

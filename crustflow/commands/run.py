@@ -8,6 +8,7 @@ from pathlib import Path
 
 from crustflow.analyses.memory import check_memory
 from crustflow.commands.common import Stages, check_features, distributed_client, write_budgets
+from crustflow.commands.report import write_report
 from crustflow.engine.strips import run_strips
 from crustflow.io.folders import (
     atomic_folder,
@@ -16,6 +17,7 @@ from crustflow.io.folders import (
     protected_inputs,
     write_manifest,
 )
+from crustflow.io.styles import sidecars
 from crustflow.samples import demo_scenario
 from crustflow.scenario import load_scenario
 
@@ -96,6 +98,7 @@ def _run_into(scenario, tmp: Path, stages: Stages, strip_rows, budgets, client, 
         client=client,
     )
     written = result["written"]
+    written += sidecars(tmp, written)
     if cog:
         _to_cog(tmp, written, stages)
     result["table"] = None
@@ -123,6 +126,8 @@ def _run_into(scenario, tmp: Path, stages: Stages, strip_rows, budgets, client, 
     }
     if ensemble is not None:
         manifest["ensemble"] = ensemble["manifest"]
+    stages("write report")
+    written.append(write_report(tmp, manifest, result, scenario, written))
     write_manifest(tmp, manifest, written)
     stages.finish()
     return result
@@ -138,8 +143,15 @@ def _to_cog(tmp: Path, written: list[str], stages: Stages) -> None:
 
 
 def _figure(figure, tmp: Path, scenario, stages: Stages) -> list[str]:
-    from crustflow.figures.flux import flux_map
+    """The flux map and the rates map, in every ``[output] figure_formats``."""
+    from crustflow.figures.common import save_figure
+    from crustflow.figures.flux import draw_flux_map
+    from crustflow.figures.rates import draw_rates_map
 
     stages("draw figure")
-    flux_map(figure, tmp / "flux_map.png", title=scenario.title)
-    return ["flux_map.png"]
+    options = {"formats": scenario.figure_formats, "dpi": scenario.figure_dpi}
+    written = save_figure(draw_flux_map(figure, title=scenario.title), tmp, "flux_map", **options)
+    written += save_figure(
+        draw_rates_map(figure, title=scenario.title), tmp, "rates_map", **options
+    )
+    return written

@@ -223,8 +223,19 @@ def _refuse_whole_grid_steps(scenario, cells: int) -> None:
         )
 
 
-#: Variables the figure draws.
-FIGURE_VARIABLES = ("flux_magnitude", "flux_east", "flux_north")
+#: Variables the figures draw (flux map, rates map), plus the input elevation for their contours,
+#: coastline and hillshade (metres, decimated with them).
+FIGURE_VARIABLES = (
+    "flux_magnitude",
+    "flux_east",
+    "flux_north",
+    "thickening_rate",
+    "uplift_rate",
+    "elevation",
+)
+
+#: Attributes of the elevation kept for the figures (it is an input, not a VARIABLES entry).
+ELEVATION_ATTRS = {"long_name": "surface elevation above sea level", "units": "m"}
 
 
 def _whole_grid_step(reader: BlockReader, plan: RunPlan, note) -> WholeGridLoad:
@@ -296,6 +307,8 @@ def compute_strip(
         result["checks"] = checks.state()
         # float32 here, as in the files: the same numbers whichever process computed them
         result["out"] = {n: to_practical(n, v).astype("float32") for n, v in si.items()}
+        if "elevation" in wanted:  # the figures' context, from the strip already read
+            result["out"]["elevation"] = block.elevation[own].astype("float32")
         return result
     finally:
         if own_reader:
@@ -408,7 +421,8 @@ class _Summary:
         if self.plan.make_figure:
             first, step = (-r0) % self.step, self.step
             for n in FIGURE_VARIABLES:
-                self.figure_rows[n].append(out[n][first::step, step // 2 :: step])
+                # copies: views would keep every strip's arrays alive until the run ends
+                self.figure_rows[n].append(out[n][first::step, step // 2 :: step].copy())
 
     def result(self, *, written, provenance, excluded, whole, budget_fields, title) -> dict:
         """The run's summary dict (see :func:`run_strips`)."""
@@ -512,7 +526,14 @@ def _figure_dataset(rows: dict, x, y, step: int, crs, title: str):
 
     xs = x[step // 2 :: step]
     ys = y[::step]
-    data = {n: (("y", "x"), np.concatenate(v, axis=0), variable_attrs(n)) for n, v in rows.items()}
+    data = {
+        n: (
+            ("y", "x"),
+            np.concatenate(v, axis=0),
+            ELEVATION_ATTRS if n == "elevation" else variable_attrs(n),
+        )
+        for n, v in rows.items()
+    }
     ds = xr.Dataset(data, coords={"y": ys[: data["flux_east"][1].shape[0]], "x": xs})
     ds.attrs["title"] = title
     return ds.rio.write_crs(crs)

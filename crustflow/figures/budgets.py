@@ -1,6 +1,7 @@
 """Figures of the volume budgets: the normal flux along a section, and a map of all budgets.
 
-Perceptually uniform colour maps (``cividis`` for the flux magnitude, ``viridis`` shades for signs),
+crustflow's own colour ramps (:mod:`crustflow.io.colour_ramps`: log-scaled sequential ramp for the
+flux magnitude, the diverging ramp's ends for the two sides of a section),
 units on every axis and colour bar, matplotlib's Agg backend (no display needed).
 """
 
@@ -14,7 +15,10 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import shapely
 import xarray as xr
 
-from crustflow.figures.common import add_caution, arrow_stride, magnitude_image, pyplot
+from crustflow.figures.common import add_caution, arrow_stride, pyplot, save_figure
+from crustflow.figures.furniture import add_image, add_scale_bar, label_axes, map_frame
+from crustflow.io.colour_ramps import colour_scale, ramp_colours
+from crustflow.io.display import axis_label
 
 __all__ = ["section_figure", "budget_map"]
 
@@ -60,7 +64,13 @@ def volume_label(value: float) -> str:
 
 
 def section_figure(
-    profile: pd.DataFrame, path: str | Path, *, name: str, title: str = "", dpi: int = 150
+    profile: pd.DataFrame,
+    path: str | Path,
+    *,
+    name: str,
+    title: str = "",
+    dpi: int = 150,
+    formats=("png",),
 ) -> Path:
     """Plot the normal flux along a section against distance and save it as PNG.
 
@@ -70,32 +80,30 @@ def section_figure(
         From :func:`crustflow.analyses.budgets.section_profile` (``distance_km``, ``normal_flux_m2_per_yr``,
         totals in ``.attrs``).
     path : path
-        Destination PNG.
+        Destination; its suffix is replaced by each of ``formats``.
     name : str
         Section name, for the title.
     title : str
         First title line (e.g. the scenario title).
     dpi : int
         Resolution.
+    formats : sequence of str
+        Figure file formats (``png``, ``svg``, ``pdf``).
 
     Returns
     -------
     Path
+        The first file written.
     """
-    from matplotlib import colormaps
 
     plt = _pyplot()
-    shades = colormaps["viridis"]
+    ends = ramp_colours("diverging", 256)[[0, -1]]  # blue: to the left, orange: to the right
     dist = profile["distance_km"].to_numpy()
     flux = profile["normal_flux_m2_per_yr"].to_numpy()
     fig, ax = plt.subplots(figsize=(8, 4.5), layout="constrained")
     ax.axhline(0.0, color="0.5", linewidth=0.8)
-    ax.fill_between(
-        dist, flux, 0, where=flux >= 0, color=shades(0.8), alpha=0.7, label="to the right"
-    )
-    ax.fill_between(
-        dist, flux, 0, where=flux < 0, color=shades(0.2), alpha=0.7, label="to the left"
-    )
+    ax.fill_between(dist, flux, 0, where=flux >= 0, color=ends[1], alpha=0.7, label="to the right")
+    ax.fill_between(dist, flux, 0, where=flux < 0, color=ends[0], alpha=0.7, label="to the left")
     ax.plot(dist, flux, color="black", linewidth=1.0)
     ax.set_xlim(0.0, profile.attrs.get("length_km", np.nanmax(dist)))
     ax.set_xlabel("distance along the section from its first vertex (km)")
@@ -114,10 +122,14 @@ def section_figure(
     _caution(
         fig, "Positive: towards the right-hand side walking from the first to the last vertex."
     )
+    return _save(fig, path, formats, dpi)
+
+
+def _save(fig, path, formats, dpi) -> Path:
+    """Save in every format (``path``'s suffix replaced); the path of the first file."""
+
     path = Path(path)
-    fig.savefig(path, dpi=dpi)
-    plt.close(fig)
-    return path
+    return path.parent / save_figure(fig, path.parent, path.stem, formats=formats, dpi=dpi)[0]
 
 
 def budget_map(
@@ -128,6 +140,7 @@ def budget_map(
     regions=None,
     title: str = "",
     dpi: int = 150,
+    formats=("png",),
 ) -> Path:
     """Map the flux magnitude with the sections and regions labelled with their budgets.
 
@@ -156,14 +169,17 @@ def budget_map(
     """
 
     plt = _pyplot()
-    geographic = bool(fields.rio.crs is not None and fields.rio.crs.is_geographic)
+    frame = map_frame(fields.x.values, fields.y.values, fields.rio.crs)
+    geographic = frame.geographic
     scale = 1.0 if geographic else 1e-3
-    x, y = fields.x.values * scale, fields.y.values * scale
+    x, y = frame.x, frame.y
     qe = np.asarray(fields["flux_east"].transpose("y", "x").values, dtype=float)
     qn = np.asarray(fields["flux_north"].transpose("y", "x").values, dtype=float)
     mag = np.hypot(qe, qn)
     fig, ax = plt.subplots(figsize=(8, 6.5), layout="constrained")
-    _, extent = magnitude_image(fig, ax, x, y, mag)
+    flux_scale = colour_scale("flux_magnitude", mag)
+    add_image(fig, ax, frame, mag, flux_scale, axis_label("flux_magnitude") + ", log scale")
+    extent = frame.extent
     step = arrow_stride(mag.shape)
     sl = (slice(step // 2, None, step), slice(step // 2, None, step))
     norm = mag[sl]
@@ -208,21 +224,15 @@ def budget_map(
                 clip_on=True,
                 **label,
             )
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
-    ax.set_xlabel("longitude (degrees)" if geographic else "x (km)")
-    ax.set_ylabel("latitude (degrees)" if geographic else "y (km)")
-    ax.set_aspect(1.0 / np.cos(np.deg2rad(np.nanmean(y))) if geographic else "equal")
+    add_scale_bar(ax, frame, corner="right")  # region labels tend to sit lower left
+    label_axes(ax, frame)
     ax.set_title(title or fields.attrs.get("title", "crustflow volume budgets"))
     _caution(
         fig,
         "Sections: volume flux, positive towards the arrow (right-hand side walking from the first "
         "to the last vertex). Regions: net inflow (positive = volume gained).",
     )
-    path = Path(path)
-    fig.savefig(path, dpi=dpi)
-    plt.close(fig)
-    return path
+    return _save(fig, path, formats, dpi)
 
 
 def _rings(geom) -> list[np.ndarray]:

@@ -1,12 +1,21 @@
-"""What every figure shares: matplotlib without a display, the caution footer, the magnitude image
-and the arrow spacing. Colour maps are perceptually uniform (matplotlib's ``cividis``).
+"""What every figure shares: matplotlib without a display, the caution footer, the magnitude image,
+the arrow spacing, and saving a figure in every requested format. Colours are crustflow's own ramps
+(:mod:`crustflow.io.colour_ramps`); map furniture is in :mod:`crustflow.figures.furniture`.
 """
 
 from __future__ import annotations
 
+from pathlib import Path
+
+from crustflow._version import __version__
+from crustflow.figures.furniture import colour_map
+from crustflow.io.colour_ramps import ColourScale
 from crustflow.variables import CAUTION
 
-__all__ = ["arrow_stride", "magnitude_image", "pyplot", "add_caution"]
+__all__ = ["arrow_stride", "magnitude_image", "pyplot", "add_caution", "save_figure", "FORMATS"]
+
+#: Figure file formats crustflow writes (matplotlib backends: Agg, SVG, PDF).
+FORMATS = ("png", "svg", "pdf")
 
 #: Share of the figure's height kept free at the foot for the caution line.
 FOOT_SHARE = 0.05
@@ -40,7 +49,8 @@ def add_caution(fig, text: str = "", *, foot: float = FOOT_SHARE) -> None:
 
 
 def magnitude_image(fig, ax, x, y, magnitude, label="channel flux per unit width (m²/yr)"):
-    """Draw a map of flux magnitude (cividis, cell-exact extent) with its colour bar.
+    """Draw a map of flux magnitude (crustflow's sequential ramp, linear, cell-exact extent) with its
+    colour bar. Kept for scripts; the run's maps use :mod:`crustflow.figures.furniture`.
 
     Parameters
     ----------
@@ -64,8 +74,54 @@ def magnitude_image(fig, ax, x, y, magnitude, label="channel flux per unit width
         magnitude,
         extent=extent,
         origin="upper" if y[0] > y[-1] else "lower",
-        cmap="cividis",
+        cmap=colour_map(ColourScale("sequential", 0.0, 1.0)),
         interpolation="nearest",
     )
     fig.colorbar(image, ax=ax, shrink=0.85).set_label(label)
     return image, extent
+
+
+def save_figure(fig, folder, stem: str, *, formats=("png",), dpi: int = 150) -> list[str]:
+    """Write a figure in every requested format and close it.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    folder : path
+        Destination folder.
+    stem : str
+        File name without suffix (``flux_map`` -> ``flux_map.png``, ``flux_map.svg``, ...).
+    formats : sequence of str
+        Any of :data:`FORMATS`, in the order written.
+    dpi : int
+        Resolution of raster output (PNG; also of images embedded in SVG and PDF). PNG files
+        carry it in their ``pHYs`` chunk.
+
+    Returns
+    -------
+    list of str
+        The file names written, in the order of ``formats``.
+    """
+    plt = pyplot()
+    names = []
+    try:
+        for fmt in dict.fromkeys(formats):
+            if fmt not in FORMATS:
+                raise ValueError(f"figure format {fmt!r} is not one of {', '.join(FORMATS)}")
+            name = f"{stem}.{fmt}"
+            fig.savefig(Path(folder) / name, dpi=dpi, format=fmt, metadata=_metadata(fmt))
+            names.append(name)
+    finally:
+        plt.close(fig)
+    return names
+
+
+def _metadata(fmt: str) -> dict:
+    """File metadata: creator only, and no creation date in SVG/PDF (reproducible files)."""
+
+    creator = f"crustflow {__version__}"
+    if fmt == "png":
+        return {"Software": creator}
+    if fmt == "svg":
+        return {"Creator": creator, "Date": None}
+    return {"Creator": creator, "CreationDate": None}

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from crustflow.figures.common import add_caution, pyplot
+from crustflow.figures.common import add_caution, pyplot, save_figure
 
 __all__ = ["profile_figure"]
 
@@ -13,9 +13,10 @@ __all__ = ["profile_figure"]
 EAST_COLOUR, NORTH_COLOUR = "#1b9e77", "#7570b3"
 
 
-def profile_figure(site, path: str | Path, *, dpi: int = 120) -> Path:
+def profile_figure(site, path: str | Path, *, dpi: int = 120, formats=("png",)) -> Path:
     """Draw velocity and shear stress against height for one site of
-    :func:`crustflow.analyses.profiles.velocity_profiles` (``ds.sel(site=...)``)."""
+    :func:`crustflow.analyses.profiles.velocity_profiles` (``ds.sel(site=...)``) and save it in
+    each of ``formats`` (``path``'s suffix replaced); returns the first file's path."""
     plt = pyplot()
     fig, (a1, a2) = plt.subplots(1, 2, figsize=(8, 5), sharey=True, layout="constrained")
     hk = site.height.values / 1e3
@@ -38,6 +39,4 @@ def profile_figure(site, path: str | Path, *, dpi: int = 120) -> Path:
     )
     add_caution(fig)
     path = Path(path)
-    fig.savefig(path, dpi=dpi)
-    plt.close(fig)
-    return path
+    return path.parent / save_figure(fig, path.parent, path.stem, formats=formats, dpi=dpi)[0]

@@ -566,7 +566,8 @@ def arrow_layers(fields: xr.Dataset, *, stride: int | None = None):
     samples : geopandas.GeoDataFrame
         One Point per sampled cell centre (nodata cells left out) with ``flux_east``,
         ``flux_north``, ``flux_magnitude`` (m2/yr), ``flux_azimuth`` (degrees clockwise from true
-        north) and, when known, ``mean_speed`` (mm/yr).
+        north), ``grid_azimuth`` (degrees clockwise from grid north, for rotating point symbols
+        in a GIS) and, when known, ``mean_speed`` (mm/yr).
 
     Notes
     -----
@@ -575,6 +576,10 @@ def arrow_layers(fields: xr.Dataset, *, stride: int | None = None):
     ends at ``(x + s q_e, y + s q_n)`` in grid metres (grid east/north components). Geographic
     grids: it ends on the geodesic of azimuth ``atan2(q_e, q_n)`` and length L from the sample
     (``pyproj.Geod.fwd`` on the CRS's ellipsoid).
+
+    ``grid_azimuth = atan2(q_e, q_n)`` of the grid components: on projected grids it is the true
+    azimuth minus the meridian convergence; on geographic grids grid north is true north and it
+    equals ``flux_azimuth``.
 
     ``flux_azimuth`` is taken from the fields when present, else computed with
     :func:`crustflow.geometry.grid.azimuth` (meridian convergence applied on projected grids). ``mean_speed``
@@ -596,7 +601,15 @@ def arrow_layers(fields: xr.Dataset, *, stride: int | None = None):
         az = grid.values("flux_azimuth")[sl]
     else:
         az = azimuth(grid.values("flux_east"), grid.values("flux_north"), g)[sl]
-    attrs = {"flux_east": qe, "flux_north": qn, "flux_magnitude": mag, "flux_azimuth": az}
+    with np.errstate(invalid="ignore"):
+        grid_az = np.where(mag > 0, np.degrees(np.arctan2(qe, qn)) % FULL_TURN, 0.0)
+    attrs = {
+        "flux_east": qe,
+        "flux_north": qn,
+        "flux_magnitude": mag,
+        "flux_azimuth": az,
+        "grid_azimuth": grid_az,
+    }
     speed = _mean_speed(grid, mag, sl)
     if speed is not None:
         attrs["mean_speed"] = speed

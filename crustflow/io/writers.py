@@ -14,6 +14,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from crustflow._version import __version__
+from crustflow.io.colour_ramps import flag_categories
+from crustflow.io.styles import BandStatistics, finish_geotiff
 from crustflow.variables import CAUTION
 
 if TYPE_CHECKING:
@@ -155,13 +157,21 @@ class NetcdfWriter:
 class GeotiffWriter:
     """Writes one variable as a tiled, DEFLATE-compressed single-band GeoTIFF, strip by strip.
 
-    Float variables are float32 with NaN nodata; flag variables are uint8 with nodata 255. The band
-    description is the variable's ``long_name`` and the band unit its ``units``.
+    Float variables are float32 with NaN nodata; flag variables are uint8 with nodata 255, with a
+    colour table and category names. The band description is the variable's ``long_name`` and the
+    band unit its ``units``. On :meth:`close` the file gets statistics, overviews and a ``.qml``
+    style sidecar (:func:`crustflow.io.styles.finish_geotiff`); ``variable`` (default: the file's
+    base name) picks its colour ramp.
     """
 
-    def __init__(self, path, *, crs, transform, height: int, width: int, attrs: dict) -> None:
+    def __init__(
+        self, path, *, crs, transform, height: int, width: int, attrs: dict, variable=None
+    ) -> None:
         import rasterio
 
+        self.path, self.attrs = Path(path), dict(attrs)
+        self.variable = variable or self.path.stem
+        self.statistics = BandStatistics(height, width)
         self.flag = "flag_values" in attrs
         if self.flag:
             dtype, nodata, predictor = "uint8", 255, 2
@@ -190,24 +200,51 @@ class GeotiffWriter:
         self.dst.units = (attrs.get("units", ""),)
         self.dst.update_tags(1, units=attrs.get("units", ""), long_name=attrs.get("long_name", ""))
         self.dst.update_tags(source="crustflow", caution=attrs.get("caution", ""))
+        if self.flag:
+            _flag_colour_table(self.dst, self.variable, attrs)
 
     def write_rows(self, row0: int, values: np.ndarray) -> None:
         """Write rows starting at ``row0``."""
         from rasterio.windows import Window
 
         if self.flag:
+            self.statistics.add(row0, values)
             data = np.where(np.isfinite(values), values, 255).astype("uint8")
         else:
             data = finite_float32(values, self.dst.name)
+            self.statistics.add(row0, data)  # the numbers as stored
         self.dst.write(data, 1, window=Window(0, row0, data.shape[1], data.shape[0]))
 
     def close(self) -> None:
-        """Close the file."""
+        """Close the file, then add statistics, overviews and the ``.qml`` sidecar."""
+        if self.dst.closed:
+            return
         self.dst.close()
+        finish_geotiff(
+            self.path, variable=self.variable, attrs=self.attrs, statistics=self.statistics
+        )
+
+
+def _flag_colour_table(dst, variable: str, attrs: dict) -> None:
+    """Colour table and category names of a flag band (nodata 255 transparent).
+
+    Category names go in the band tags ``CATEGORY_0``/``CATEGORY_1`` and ``flag_meanings`` (CF);
+    the colours are those of the ``.qml`` sidecar (:func:`crustflow.io.colour_ramps.flag_categories`).
+    """
+    meanings = str(attrs.get("flag_meanings", "no yes"))
+    table = {255: (0, 0, 0, 0)}
+    tags = {"flag_values": "0 1", "flag_meanings": meanings}
+    for value, label, colour in flag_categories(variable, meanings):
+        h = colour.lstrip("#")
+        table[value] = tuple(int(h[i : i + 2], 16) for i in (0, 2, 4)) + (255,)
+        tags[f"CATEGORY_{value}"] = label
+    dst.write_colormap(1, table)
+    dst.update_tags(1, **tags)
 
 
 def to_cog(path: str | Path) -> None:
-    """Rewrite a tiled GeoTIFF in place as a cloud-optimised GeoTIFF (DEFLATE, overviews).
+    """Rewrite a tiled GeoTIFF in place as a cloud-optimised GeoTIFF (DEFLATE, overviews: average
+    resampling for continuous variables, nearest for flags).
 
     Notes
     -----
@@ -220,16 +257,16 @@ def to_cog(path: str | Path) -> None:
     path = Path(path)
     tmp = path.with_suffix(".cog.tif")
     with rasterio.open(path) as src:
-        predictor = 3 if src.dtypes[0].startswith("float") else 2
+        continuous = src.dtypes[0].startswith("float")
     copy(
         path,
         tmp,
         driver="COG",
         compress="DEFLATE",
-        predictor=predictor,
+        predictor=3 if continuous else 2,
         overviews="AUTO",
-        resampling="nearest",
-    )  # GDAL's CreateCopy carries description, unit and tags over
+        resampling="average" if continuous else "nearest",
+    )  # GDAL's CreateCopy carries description, unit, tags and the colour table over
     tmp.replace(path)
 
 

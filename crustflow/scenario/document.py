@@ -22,10 +22,24 @@ from crustflow.scenario.toml import read_toml
 from crustflow.units import parse_quantity, parse_vector
 from crustflow.variables import VARIABLES
 
-__all__ = ["ModelParameters", "Scenario", "load_scenario", "scenario_from_dict", "FORMATS"]
+__all__ = [
+    "ModelParameters",
+    "Scenario",
+    "load_scenario",
+    "scenario_from_dict",
+    "FORMATS",
+    "FIGURE_FORMATS",
+]
 
 #: Output formats an ``[output] formats`` list may name.
 FORMATS = ("netcdf", "geotiff", "figure")
+
+#: File formats of figures (``[output] figure_formats``); the first default.
+FIGURE_FORMATS = ("png", "svg", "pdf")
+
+#: Default and allowed range of ``[output] figure_dpi`` (dots per inch). Common practice, no
+#: source: 72 is screen resolution, 600 covers print.
+FIGURE_DPI, FIGURE_DPI_RANGE = 150, (50, 600)
 
 # Table -> key -> kind ("path", "text", a units kind of crustflow.units.DIMENSIONS, "vector:<kind>",
 # "list"). The nested tables are the scenario file's sections.
@@ -58,7 +72,12 @@ _SCHEMA: dict[str, Any] = {
     },
     "walls": {"upper_velocity": "vector:velocity"},
     "constants": {"gravity": "acceleration"},
-    "output": {"variables": "list", "formats": "list"},
+    "output": {
+        "variables": "list",
+        "formats": "list",
+        "figure_formats": "list",
+        "figure_dpi": "number",
+    },
     "budgets": {"sections": "path", "regions": "path"},
     "roof": {"layers": "list"},  # checked by crustflow.scenario.load
     "ensemble": "table",  # checked by crustflow.analyses.ensemble.run.parse_ensemble
@@ -89,6 +108,10 @@ class Scenario:
         Output variables (None: all).
     formats : tuple of str
         Output formats, from :data:`FORMATS`.
+    figure_formats : tuple of str
+        File formats of every figure, from :data:`FIGURE_FORMATS` (default PNG only).
+    figure_dpi : int
+        Resolution of every figure, dots per inch.
     source : Path or None
         The scenario file, if read from one.
     written : dict
@@ -113,6 +136,8 @@ class Scenario:
         None  #: crustflow.analyses.ensemble.run.EnsembleSpec when [ensemble] is given
     )
     fit: FitSpec | None = None  #: observations, priors and sampler when [fit] is given
+    figure_formats: tuple[str, ...] = FIGURE_FORMATS[:1]
+    figure_dpi: int = FIGURE_DPI
 
     def resolved(self) -> dict:
         """The scenario resolved to SI units, as a JSON-ready dict."""
@@ -134,6 +159,8 @@ class Scenario:
             "output": {
                 "variables": list(self.variables) if self.variables else "all",
                 "formats": list(self.formats),
+                "figure_formats": list(self.figure_formats),
+                "figure_dpi": self.figure_dpi,
             },
         }
         return out
@@ -318,7 +345,42 @@ def _parse_output(output: dict) -> dict:
     for name in formats:
         if name not in FORMATS:
             raise _unknown_key(name, list(FORMATS), "output.formats")
-    return {"variables": variables, "formats": tuple(dict.fromkeys(formats))}
+    return {
+        "variables": variables,
+        "formats": tuple(dict.fromkeys(formats)),
+        **_parse_figure_options(output),
+    }
+
+
+def _parse_figure_options(output: dict) -> dict:
+    """``[output] figure_formats`` and ``figure_dpi``."""
+    formats = output.get("figure_formats", list(FIGURE_FORMATS[:1]))
+    if not isinstance(formats, list) or not formats or not all(isinstance(f, str) for f in formats):
+        raise CrustflowInputError(
+            'output.figure_formats must be a non-empty list, e.g. ["png", "svg", "pdf"]'
+        )
+    for name in formats:
+        if name.lower() not in FIGURE_FORMATS:
+            raise CrustflowInputError(
+                f"output.figure_formats: '{name}' is not a figure format; use any of "
+                + ", ".join(f'"{f}"' for f in FIGURE_FORMATS)
+            )
+    dpi = output.get("figure_dpi", FIGURE_DPI)
+    low, high = FIGURE_DPI_RANGE
+    if isinstance(dpi, bool) or not isinstance(dpi, int | float) or dpi != int(dpi):
+        raise CrustflowInputError(
+            f"output.figure_dpi must be a whole number of dots per inch, e.g. figure_dpi = "
+            f"{FIGURE_DPI}; got {dpi!r}"
+        )
+    if not low <= dpi <= high:
+        raise CrustflowInputError(
+            f"output.figure_dpi is {dpi:g}; give {low} to {high} dots per inch "
+            f"(e.g. 150 for screens, 300 for print)"
+        )
+    return {
+        "figure_formats": tuple(dict.fromkeys(f.lower() for f in formats)),
+        "figure_dpi": int(dpi),
+    }
 
 
 def _parse_budgets(budgets: dict, base: Path) -> dict:

@@ -347,6 +347,7 @@ def test_outputs_read_back(tmp_path, projected_plateau):
     assert [str(n) for n in pyogrio.list_layers(folder / "budgets.gpkg")[:, 0]] == [
         "sections",
         "regions",
+        "layer_styles",  # default styles (OGC/GDAL convention), an attributes table
     ]
     sections = gpd.read_file(folder / "budgets.gpkg", layer="sections")
     regions = gpd.read_file(folder / "budgets.gpkg", layer="regions")
@@ -369,12 +370,19 @@ def test_outputs_read_back(tmp_path, projected_plateau):
     info = pyogrio.read_info(folder / "budgets.gpkg", layer="sections")
     assert "right-hand side" in info["layer_metadata"]["DESCRIPTION"]
     layers = [str(n) for n in pyogrio.list_layers(folder / "flux_arrows.gpkg")[:, 0]]
-    assert layers == ["arrows", "samples"]
+    assert layers == ["arrows", "samples", "layer_styles"]
     arrows = gpd.read_file(folder / "flux_arrows.gpkg", layer="arrows")
     samples = gpd.read_file(folder / "flux_arrows.gpkg", layer="samples")
     assert arrows.crs == samples.crs == pyproj.CRS(UTM)
     assert set(arrows.geom_type) == {"LineString"} and set(samples.geom_type) == {"Point"}
-    fields = ["flux_east", "flux_north", "flux_magnitude", "flux_azimuth", "mean_speed"]
+    fields = [
+        "flux_east",
+        "flux_north",
+        "flux_magnitude",
+        "flux_azimuth",
+        "grid_azimuth",
+        "mean_speed",
+    ]
     assert [c for c in samples.columns if c != "geometry"] == fields
     assert all(samples[c].dtype == "float64" for c in fields)
     scale = arrows.metres_per_m2_per_yr.iloc[0]

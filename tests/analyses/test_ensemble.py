@@ -200,7 +200,8 @@ def test_percentile_maps_equal_numpy_over_explicit_members(run_case):
     with rasterio.open(out / "thickening_rate_p95.tif") as src:
         np.testing.assert_array_equal(src.read(1), ds["thickening_rate"].sel(percentile=95).values)
         assert src.tags(1)["units"] == "mm yr-1"
-    assert (out / "ensemble_map.png").stat().st_size > 0
+    assert (out / "ensemble_flux_magnitude.png").stat().st_size > 0
+    assert (out / "uplift_rate_exceedance.png").stat().st_size > 0
     import json
 
     manifest = json.loads(json.dumps(summary["manifest"]))  # JSON-ready as it is

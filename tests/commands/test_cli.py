@@ -99,7 +99,8 @@ def test_output_selection(scenario_dir):
     (scenario_dir / "sel.toml").write_text(text)
     out = scenario_dir / "sel_out"
     assert main(["run", str(scenario_dir / "sel.toml"), "--out", str(out), "--quiet"]) == 0
-    assert sorted(p.name for p in out.iterdir()) == ["flux_east.tif", "run.json"]
+    names = sorted(p.name for p in out.iterdir())
+    assert names == ["flux_east.qml", "flux_east.tif", "report.html", "run.json"]
 
 
 def test_check_command(scenario_dir, capsys):
@@ -238,8 +239,9 @@ def test_demo_writes_budgets(demo_run):
     # 1 km^3/Myr = 1000 m^3/yr (unit definition)
     assert np.allclose(table["volume_flux_km3_per_Myr"] * 1000, table["volume_flux_m3_per_yr"])
     layers = gpd.list_layers(demo_run / "budgets.gpkg")["name"].tolist()
-    assert sorted(layers) == ["regions", "sections"]
-    assert sorted(gpd.list_layers(demo_run / "flux_arrows.gpkg")["name"]) == ["arrows", "samples"]
+    assert sorted(layers) == ["layer_styles", "regions", "sections"]
+    arrow_layers = sorted(gpd.list_layers(demo_run / "flux_arrows.gpkg")["name"])
+    assert arrow_layers == ["arrows", "layer_styles", "samples"]
     assert (demo_run / "budget_map.png").is_file()
     assert (demo_run / "section_Varnessa_Scarp.png").is_file()
 

@@ -88,7 +88,7 @@ def test_rerun_replaces_own_folder_and_removes_only_listed_files(small_run, caps
     first = json.loads((out / MANIFEST).read_text())
     assert _run(scenario_dir / "scenario.toml", out) == 0
     assert json.loads((out / MANIFEST).read_text())["created"] >= first["created"]
-    assert sorted(p.name for p in out.iterdir()) == ["fields.nc", MANIFEST]
+    assert sorted(p.name for p in out.iterdir()) == ["fields.nc", "report.html", MANIFEST]
     assert not [p for p in scenario_dir.iterdir() if p.name.startswith(".out.")]
 
 

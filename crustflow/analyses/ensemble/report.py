@@ -14,8 +14,10 @@ Written into the run's (temporary) folder by :func:`crustflow.analyses.ensemble.
                             flux of each budget feature (m^3/yr) when the scenario has features
 ``ensemble_budgets.csv``    per section/region: mean, sd and the percentiles of the volume flux in
                             m^3/yr and km^3/Myr (with features only)
-``ensemble_map.png``        median and 5-95 % spread (p95 - p5) of the first variable
+``ensemble_<name>.png``    median and 5-95 % spread (p95 - p5) of each summarised variable
+``<name>_exceedance.png``   exceedance probability maps, one panel per threshold
 ``ensemble_budgets.png``    one histogram of the members' volume flux per feature
+                            (figures in every ``[output] figure_formats``, at ``figure_dpi``)
 ==========================  ====================================================================
 
 Signs of budgets as in :mod:`crustflow.analyses.budgets` (sections: positive to the right of the line's
@@ -31,7 +33,14 @@ import numpy as np
 
 from crustflow.analyses.budgets import POSITIVE_SIDE, safe_name
 from crustflow.analyses.ensemble.stats import Reducer, sorted_percentiles
-from crustflow.figures.common import add_caution, pyplot
+from crustflow.figures.common import save_figure
+from crustflow.figures.ensemble import (
+    budget_histograms,
+    draw_budget_histograms,
+    draw_ensemble_map,
+    draw_exceedance_map,
+    ensemble_map,
+)
 from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
 from crustflow.scenario.ensemble_spec import PERCENTILE_METHOD
 from crustflow.variables import CAUTION, VARIABLES, to_practical
@@ -56,23 +65,10 @@ M3_PER_YR_PER_KM3_PER_MYR = 1e3
 #: Largest side, in cells, of the decimated maps kept for the figure. Project choice (as stream.py).
 FIGURE_CELLS = 800
 
-#: Share of the figure's height kept free at the foot for the caution line. Project choice.
-FOOT_SHARE = 0.07
-
-#: Histogram bins at most. Common practice, no source.
-MAX_BINS = 40
-
-#: Readable forms of the UDUNITS units of VARIABLES, for figure labels.
-_PRETTY_UNITS = {"m2 yr-1": "m²/yr", "mm yr-1": "mm/yr", "Pa m-1": "Pa/m", "1": "dimensionless"}
-
 
 def percentile_label(p: float) -> str:
     """File and column label of a percentile: 5 -> ``p05``, 50 -> ``p50``, 2.5 -> ``p2_5``."""
     return f"p{int(p):02d}" if float(p).is_integer() else "p" + f"{p:g}".replace(".", "_")
-
-
-def _pretty(units: str) -> str:
-    return _PRETTY_UNITS.get(units, units)
 
 
 class MapWriter:
@@ -151,6 +147,7 @@ class MapWriter:
                         transform=grid.transform,
                         height=grid.height,
                         width=grid.width,
+                        variable=n,
                         attrs={
                             "long_name": f"{var.long_name}: percentile {p:g} of {M} ensemble "
                             "members",
@@ -160,7 +157,11 @@ class MapWriter:
                     )
                     self.written.append(name)
         self.step = max(1, -(-max(grid.height, grid.width) // FIGURE_CELLS))
-        self.figure_rows: dict[str, list] = {"median": [], "spread": []}
+        self.figure_rows: dict[str, list] = {
+            key: [] for n in self.names for key in (f"{n}:median", f"{n}:spread")
+        }
+        self.figure_rows["exceedance"] = []
+        self.figure_options = {"formats": scenario.figure_formats, "dpi": scenario.figure_dpi}
 
     def _add_stacked(self, chunk_rows: int) -> None:
         """Percentile and exceedance variables: a leading dimension before (y, x)."""
@@ -232,7 +233,7 @@ class MapWriter:
     def write(self, r0: int, r1: int, maps: dict) -> None:
         """Write rows ``r0:r1`` from the flat per-cell statistics of one strip (SI)."""
         shape = (r1 - r0, self.grid.width)
-        for i, n in enumerate(self.names):
+        for n in self.names:
             m = maps[n]
             pct = to_practical(n, m["percentiles"]).reshape(-1, *shape)
             if self.nc is not None:
@@ -247,15 +248,18 @@ class MapWriter:
             for k, p in zip(self.pick, self.spec.percentiles, strict=True):
                 if (n, p) in self.tifs:
                     self.tifs[n, p].write_rows(r0, pct[k])
-            if i == 0:
-                lo, mid, hi = (pct[k] for k in self.figure_pick)
-                first, s = (-r0) % self.step, self.step
-                self.figure_rows["median"].append(mid[first::s, s // 2 :: s])
-                self.figure_rows["spread"].append((hi - lo)[first::s, s // 2 :: s])
+            lo, mid, hi = (pct[k] for k in self.figure_pick)
+            first, s = (-r0) % self.step, self.step
+            # copies: views would keep each strip's percentile stack alive until the end
+            self.figure_rows[f"{n}:median"].append(mid[first::s, s // 2 :: s].copy())
+            self.figure_rows[f"{n}:spread"].append((hi - lo)[first::s, s // 2 :: s])
         exc = self.spec.exceedance_variable
-        if exc is not None and self.nc is not None:
+        if exc is not None:
             values = maps[exc]["exceedance"].reshape(-1, *shape)
-            self.nc.nc.variables[f"{exc}_exceedance"][:, r0:r1, :] = values.astype("float32")
+            first, s = (-r0) % self.step, self.step
+            self.figure_rows["exceedance"].append(values[:, first::s, s // 2 :: s].copy())
+            if self.nc is not None:
+                self.nc.nc.variables[f"{exc}_exceedance"][:, r0:r1, :] = values.astype("float32")
 
     def close(self) -> list[str]:
         """Close every file; return the names written."""
@@ -275,25 +279,29 @@ class MapWriter:
             pass
 
     def figures(self, folder, stats, member_budgets) -> list[str]:
-        """Draw ``ensemble_map.png`` and, with budgets, ``ensemble_budgets.png``."""
-        g, s = self.grid, self.step
-        n = self.names[0]
-        median = np.concatenate(self.figure_rows["median"], axis=0)
-        spread = np.concatenate(self.figure_rows["spread"], axis=0)
-        xs, ys = g.x[s // 2 :: s], g.y[::s][: median.shape[0]]
-        title = f"{self.spec.members}-member ensemble: {n}"
-        ensemble_map(
-            median, spread, xs, ys, g.crs, n, Path(folder) / "ensemble_map.png", title=title
-        )
-        out = ["ensemble_map.png"]
+        """Draw ``ensemble_<name>`` for every variable, ``<exceedance variable>_exceedance`` and,
+        with budgets, ``ensemble_budgets``, in every figure format; returns the file names."""
+        g, s, members = self.grid, self.step, self.spec.members
+        out: list[str] = []
+        for n in self.names:
+            median = np.concatenate(self.figure_rows[f"{n}:median"], axis=0)
+            spread = np.concatenate(self.figure_rows[f"{n}:spread"], axis=0)
+            xs, ys = g.x[s // 2 :: s], g.y[::s][: median.shape[0]]
+            title = f"{members}-member ensemble: {VARIABLES[n].long_name}"
+            fig = draw_ensemble_map(median, spread, xs, ys, g.crs, n, title=title)
+            out += save_figure(fig, folder, f"ensemble_{n}", **self.figure_options)
+        exc = self.spec.exceedance_variable
+        if exc is not None and self.figure_rows["exceedance"]:
+            probability = np.concatenate(self.figure_rows["exceedance"], axis=1)
+            xs, ys = g.x[s // 2 :: s], g.y[::s][: probability.shape[1]]
+            thresholds = [t * VARIABLES[exc].factor for t in self.spec.thresholds]
+            fig = draw_exceedance_map(probability, thresholds, xs, ys, g.crs, exc)
+            out += save_figure(fig, folder, f"{exc}_exceedance", **self.figure_options)
         if member_budgets is not None and member_budgets.shape[1]:
-            budget_histograms(
-                member_budgets,
-                stats,
-                Path(folder) / "ensemble_budgets.png",
-                percentiles=self.spec.percentiles,
+            fig = draw_budget_histograms(
+                member_budgets, stats, percentiles=self.spec.percentiles, note=POSITIVE_SIDE
             )
-            out.append("ensemble_budgets.png")
+            out += save_figure(fig, folder, "ensemble_budgets", **self.figure_options)
         return out
 
 
@@ -362,141 +370,3 @@ def write_tables(folder, samples, member_budgets, spec) -> list[str]:
         stats.to_csv(folder / "ensemble_budgets.csv", index=False)
         out.append("ensemble_budgets.csv")
     return out
-
-
-# ----------------------------------------------------------------------------------------------
-# figures
-
-
-def _pyplot():
-
-    return pyplot()
-
-
-def _foot(fig, text: str) -> None:
-
-    add_caution(fig, text, foot=FOOT_SHARE)
-
-
-def ensemble_map(
-    median, spread, x, y, crs, name: str, path, *, title: str = "", dpi: int = 150
-) -> Path:
-    """Median and 5-95 % spread (p95 - p5) of one variable, side by side (cividis, units).
-
-    Parameters
-    ----------
-    median, spread : ndarray, shape (len(y), len(x))
-        In the practical unit of ``name``.
-    x, y : ndarray
-        Cell-centre coordinates (m or degrees).
-    crs
-        The grid's CRS (pyproj or rasterio), for axis labels.
-    name : str
-        Variable name (a key of :data:`crustflow.variables.VARIABLES`).
-    path : path
-        Destination PNG.
-    title : str
-    dpi : int
-
-    Returns
-    -------
-    Path
-    """
-    plt = _pyplot()
-    geographic = bool(crs is not None and crs.is_geographic)
-    scale = 1.0 if geographic else 1e-3
-    xs, ys = np.asarray(x) * scale, np.asarray(y) * scale
-    dx = abs(xs[1] - xs[0]) if xs.size > 1 else 1.0
-    dy = abs(ys[1] - ys[0]) if ys.size > 1 else 1.0
-    extent = (xs.min() - dx / 2, xs.max() + dx / 2, ys.min() - dy / 2, ys.max() + dy / 2)
-    units = _pretty(VARIABLES[name].units)
-    fig, axes = plt.subplots(1, 2, figsize=(12, 5.5), layout="constrained")
-    for ax, values, label in (
-        (axes[0], median, "median (p50)"),
-        (axes[1], spread, "spread p95 - p5"),
-    ):
-        image = ax.imshow(
-            values,
-            extent=extent,
-            origin="upper" if ys[0] > ys[-1] else "lower",
-            cmap="cividis",
-            interpolation="nearest",
-        )
-        fig.colorbar(image, ax=ax, shrink=0.85).set_label(f"{name}, {label} ({units})")
-        ax.set_title(label)
-        ax.set_xlabel("longitude (degrees)" if geographic else "x (km)")
-        ax.set_ylabel("latitude (degrees)" if geographic else "y (km)")
-        if geographic:
-            ax.set_aspect(1.0 / np.cos(np.deg2rad(np.nanmean(ys))))
-        else:
-            ax.set_aspect("equal")
-    fig.suptitle(title or name)
-    _foot(fig, "Percentiles over ensemble members.")
-    path = Path(path)
-    fig.savefig(path, dpi=dpi)
-    plt.close(fig)
-    return path
-
-
-def budget_histograms(
-    member_budgets, stats, path, *, percentiles=(5, 50, 95), dpi: int = 150
-) -> Path:
-    """One histogram of the members' volume flux per budget feature, km^3/Myr.
-
-    Parameters
-    ----------
-    member_budgets : pandas.DataFrame
-        One column per feature, m^3/yr (``attrs`` ``names`` and ``kinds``).
-    stats : pandas.DataFrame
-        From :func:`budget_statistics` (mean and percentiles are marked).
-    path : path
-        Destination PNG.
-    percentiles : sequence of float
-    dpi : int
-
-    Returns
-    -------
-    Path
-    """
-
-    plt = _pyplot()
-    n = member_budgets.shape[1]
-    cols = min(3, n)
-    rows = -(-n // cols)
-    fig, axes = plt.subplots(
-        rows, cols, figsize=(4.2 * cols, 3.2 * rows + 0.6), layout="constrained", squeeze=False
-    )
-    values = member_budgets.to_numpy(dtype=float) / M3_PER_YR_PER_KM3_PER_MYR
-    for j, ax in enumerate(axes.ravel()):
-        if j >= n:
-            ax.set_visible(False)
-            continue
-        v = values[:, j][np.isfinite(values[:, j])]
-        name, kind = member_budgets.attrs["names"][j], member_budgets.attrs["kinds"][j]
-        if v.size:
-            ax.hist(v, bins=min(MAX_BINS, max(5, int(np.sqrt(v.size)))), color="#4c6a92")
-            row = stats.iloc[j]
-            ax.axvline(row["mean_km3_per_Myr"], color="black", lw=1.2, label="mean")
-            for p in percentiles:
-                ax.axvline(
-                    row[f"{percentile_label(p)}_km3_per_Myr"], color="#d9a21b", lw=1, ls="--"
-                )
-            ax.plot(
-                [],
-                [],
-                color="#d9a21b",
-                ls="--",
-                label="percentiles " + ", ".join(f"{p:g}" for p in percentiles),
-            )
-            ax.legend(fontsize=6, loc="upper right")
-        else:
-            ax.text(0.5, 0.5, "no data", ha="center", va="center", transform=ax.transAxes)
-        ax.set_title(f"{kind} {name}", fontsize=9)
-        ax.set_xlabel("volume flux (km³/Myr)")
-        ax.set_ylabel("members")
-    fig.suptitle(f"Volume budgets over {member_budgets.shape[0]} ensemble members")
-    _foot(fig, f"Signs: {POSITIVE_SIDE}.")
-    path = Path(path)
-    fig.savefig(path, dpi=dpi)
-    plt.close(fig)
-    return path
