@@ -12,8 +12,9 @@ Grids are regular 2-D numpy arrays indexed ``[row, col] = [y, x]`` with 1-D cell
 
 Vectors are (east, north) components per metre in the local metric frame (on projected grids the
 frame whose north axis is the ground direction of grid north, see
-:mod:`crustflow.geometry.projection`); azimuths are degrees clockwise from true north. Everything here is pure numpy on in-memory
-arrays, apart from the calls to pyproj for the CRS and the meridian convergence.
+:mod:`crustflow.geometry.projection`); azimuths are degrees clockwise from true north. Everything
+here is pure numpy on in-memory arrays, apart from the calls to pyproj for the CRS, the projection
+factors and the meridian convergence.
 
 Whole-globe grids and the poles:
 

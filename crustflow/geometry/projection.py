@@ -125,9 +125,7 @@ def point_factors(crs: pyproj.CRS, x, y) -> ProjectionFactors:
     return ProjectionFactors(c, d, b)
 
 
-def lattice_factors(
-    crs: pyproj.CRS, x, y, *, x_step: float, y_step: float
-) -> ProjectionFactors:
+def lattice_factors(crs: pyproj.CRS, x, y, *, x_step: float, y_step: float) -> ProjectionFactors:
     """Projection factors on a grid of points, interpolated from an absolute lattice.
 
     Parameters
