@@ -45,7 +45,7 @@ import numpy as np
 import pyproj
 
 from crustflow.errors import CrustflowInputError
-from crustflow.geometry.projection import ProjectionFactors, lattice_factors
+from crustflow.geometry.projection import ProjectionFactors, lattice_factors, point_factors
 
 __all__ = [
     "WGS84",
@@ -58,6 +58,7 @@ __all__ = [
     "face_lengths",
     "grid_geometry",
     "gradient",
+    "ground_steps",
     "meridian_convergence",
 ]
 
@@ -615,6 +616,42 @@ def divergence(q_east, q_north, geom: GridGeometry) -> np.ndarray:
     )
     div = net / cell_areas(geom)
     return np.where(nodata, np.nan, div)
+
+
+def ground_steps(geom: GridGeometry, x, y, east, north) -> tuple[np.ndarray, ...]:
+    """True lengths and directions of short grid steps at arbitrary points.
+
+    Parameters
+    ----------
+    geom : GridGeometry
+    x, y : array_like
+        Points, in the grid's coordinates (broadcast together with ``east``, ``north``).
+    east, north : array_like
+        Unit step directions in the grid's coordinates (grid east/north on projected grids).
+
+    Returns
+    -------
+    scale, ground_east, ground_north : numpy.ndarray
+        Ground metres per projected metre along the step (1 where the grid is not a projected
+        grid with a CRS), and the step's unit direction in the local frame of :func:`gradient`.
+
+    Notes
+    -----
+    With the projection factors c, d, b at the point (:mod:`crustflow.geometry.projection`, exact
+    pyproj values), a grid step ``t`` is the ground vector ``(t_x / c, (t_y - d t_x / c) / b)``
+    (the inverse Jacobian); scale is its length. Geographic grids and projected grids without a
+    CRS return the inputs with scale 1.
+    """
+    east, north = np.asarray(east, dtype=float), np.asarray(north, dtype=float)
+    if not geom.scaled:
+        return np.ones(np.broadcast(x, y, east).shape), east + 0.0, north + 0.0
+    horizontal = geom.crs.sub_crs_list[0] if geom.crs.is_compound else geom.crs
+    f = point_factors(horizontal, x, y)
+    ge = east / f.east
+    gn = (north - f.shear * ge) / f.north
+    scale = np.hypot(ge, gn)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return scale, ge / scale, gn / scale
 
 
 def meridian_convergence(geom: GridGeometry) -> np.ndarray:
