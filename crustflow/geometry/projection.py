@@ -39,9 +39,9 @@ import pyproj
 __all__ = ["FACTOR_SPACING", "ProjectionFactors", "lattice_factors", "point_factors"]
 
 #: Spacing of the lattice of exact pyproj evaluations, m (projected). Value derived: the factors
-#: vary on the scale of the Earth's radius R, so bilinear interpolation errs by about
-#: ``FACTOR_SPACING^2 / (8 R^2)`` relative, 8e-8 here (tests/geometry/test_projection_factors.py
-#: checks it against pyproj at every cell of a 3000 km conic grid).
+#: vary on the scale of the Earth's radius, so bilinear interpolation errs by about
+#: ``FACTOR_SPACING^2 |k''| / 8``: at most 2.3e-7 relative on a 3000 km conic grid
+#: (tests/geometry/test_projection_factors.py checks it against pyproj at every cell).
 FACTOR_SPACING = 5000.0
 
 #: Shears ``|d| / c`` below this are set to exactly zero (conformal projections), dimensionless.
