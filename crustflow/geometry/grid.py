@@ -729,14 +729,20 @@ def azimuth(east, north, geom: GridGeometry) -> np.ndarray:
     ``azimuth = atan2(east, north) + gamma`` reduced to [0, 360), with gamma from
     :func:`meridian_convergence` (0 on geographic grids). On a conformal projection (UTM, Lambert
     conformal conic, polar stereographic, Mercator) this equals the ``pyproj.Geod.inv`` forward
-    azimuth from a cell centre to a point a short distance along the vector; on other projections
-    it is exact for grid north and otherwise off by at most the projection's angular distortion.
+    azimuth from a cell centre to a point a short distance along the vector. On other projections
+    (projected grids with a CRS) the vector's frame is turned by the true azimuth of grid north,
+    which departs from gamma by up to the angular distortion: that offset
+    (:attr:`crustflow.geometry.projection.ProjectionFactors.north_offset`) is added too.
     """
     e = _checked_field(east, geom, "east")
     n = _checked_field(north, geom, "north")
     az = np.degrees(np.arctan2(e, n))
     if geom.kind == "projected":
         az = az + meridian_convergence(geom)
+        if geom.scaled:
+            offset = geom.centre_factors.north_offset
+            if np.any(offset != 0.0):
+                az = az + offset
     az = np.mod(az, FULL_TURN)
     az = np.where(az >= FULL_TURN, 0.0, az)  # np.mod(-tiny, 360) rounds to 360
     az = np.where((e == 0) & (n == 0), 0.0, az)

@@ -57,11 +57,16 @@ class ProjectionFactors:
     ----------
     east, shear, north : numpy.ndarray
         c, d, b of the module docstring: projected metres per ground metre, dimensionless.
+    north_offset : numpy.ndarray
+        True azimuth of the frame's north axis (the ground direction of grid north) minus PROJ's
+        meridian convergence, degrees: 0 on conformal projections (set to exactly 0 where the
+        shear is 0), up to about the angular distortion on others.
     """
 
     east: np.ndarray
     shear: np.ndarray
     north: np.ndarray
+    north_offset: np.ndarray
 
     @property
     def areal(self) -> np.ndarray:
@@ -93,7 +98,8 @@ def point_factors(crs: pyproj.CRS, x, y) -> ProjectionFactors:
     ``J = a [[x_lam / (N cos phi), x_phi / M], [y_lam / (N cos phi), y_phi / M]]``. Its LQ
     decomposition ``J = J_F Q`` (Q a rotation) gives ``c = |(J00, J01)|``,
     ``d = (J00 J10 + J01 J11) / c``, ``b = det J / c``: the rotation Q turns true north onto the
-    ground direction of grid north.
+    ground direction of grid north, whose true azimuth is ``atan2(-J01, J00)`` (equal to PROJ's
+    meridian convergence on a conformal projection; checked against ``pyproj.Geod.inv``).
 
     References
     ----------
@@ -122,7 +128,9 @@ def point_factors(crs: pyproj.CRS, x, y) -> ProjectionFactors:
         d = (j00 * j10 + j01 * j11) / c
         b = (j00 * j11 - j01 * j10) / c
         d = np.where(np.abs(d) <= CONFORMAL_SHEAR * c, 0.0, d)
-    return ProjectionFactors(c, d, b)
+    convergence = np.asarray(f.meridian_convergence, dtype=float).reshape(x.shape)
+    offset = np.mod(np.degrees(np.arctan2(-j01, j00)) - convergence + 180.0, 360.0) - 180.0
+    return ProjectionFactors(c, d, b, np.where(d == 0.0, 0.0, offset))
 
 
 def lattice_factors(crs: pyproj.CRS, x, y, *, x_step: float, y_step: float) -> ProjectionFactors:
@@ -155,15 +163,15 @@ def lattice_factors(crs: pyproj.CRS, x, y, *, x_step: float, y_step: float) -> P
     yn, yi, yw = _axis_nodes(y, y_step)
     nodes = point_factors(crs, xn[None, :], yn[:, None])
     out = []
-    for v in (nodes.east, nodes.shear, nodes.north):
+    for v in (nodes.east, nodes.shear, nodes.north, nodes.north_offset):
         rows = v[yi] if yw is None else v[yi] * (1.0 - yw[:, None]) + v[yi + 1] * yw[:, None]
         out.append(rows[:, xi] if xw is None else rows[:, xi] * (1.0 - xw) + rows[:, xi + 1] * xw)
-    bad = ~(np.isfinite(out[0]) & np.isfinite(out[1]) & np.isfinite(out[2]))
+    bad = ~np.logical_and.reduce([np.isfinite(v) for v in out])
     if bad.any():
         r, c = np.nonzero(bad)
         exact = point_factors(crs, x[c], y[r])
-        for v, e in zip(out, (exact.east, exact.shear, exact.north), strict=True):
-            v[r, c] = e
+        for v, name in zip(out, ("east", "shear", "north", "north_offset"), strict=True):
+            v[r, c] = getattr(exact, name)
     return ProjectionFactors(*out)
 
 

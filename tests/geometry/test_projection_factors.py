@@ -30,6 +30,7 @@ from crustflow import ModelParameters
 from crustflow.cli import main
 from crustflow.constants import SECONDS_PER_YEAR
 from crustflow.geometry.grid import (
+    azimuth,
     cell_areas,
     cell_spacings,
     divergence,
@@ -123,6 +124,7 @@ def test_lattice_interpolation_matches_pyproj_at_every_cell(crs):
         np.testing.assert_allclose(got.east, exact.east, rtol=5e-7)
         np.testing.assert_allclose(got.north, exact.north, rtol=5e-7)
         np.testing.assert_allclose(got.shear, exact.shear, atol=5e-7)
+        np.testing.assert_allclose(got.north_offset, exact.north_offset, atol=1e-5)  # degrees
         xf = np.concatenate(([x[0] - cell / 2], 0.5 * (x[:-1] + x[1:]), [x[-1] + cell / 2]))
         exact_f = point_factors(pyproj.CRS(crs), xf[None, :], y[:, None])
         np.testing.assert_allclose(geom.x_face_factors.north, exact_f.north, rtol=5e-7)
@@ -205,6 +207,25 @@ def test_gradient_of_geodesic_distance_has_unit_length(crs):
     inner[1:-1, 1:-1] = True
     err = np.abs(length - 1.0)[far & inner]
     assert np.median(err) < 2e-5 and err.max() < 5e-4
+
+
+@pytest.mark.parametrize("crs", [LCC, AEA])
+def test_azimuth_of_the_distance_gradient_matches_geodesics(crs):
+    # pyproj Geod.inv: the gradient of the distance from a point points away from it, along the
+    # geodesic (azimuth at the cell = back azimuth + 180). On the Albers grid this needs the offset
+    # between grid north's true azimuth and PROJ's meridian convergence (up to ~1 degree here).
+    x, y = axes(1500e3, 10e3)
+    geom = grid_geometry(x, y, crs)
+    centre = (100.0, 30.0)
+    lon, lat = to_lonlat(crs).transform(*np.meshgrid(x, y))
+    _, back, dist = WGS84_GEOD.inv(
+        np.full(lon.shape, centre[0]), np.full(lat.shape, centre[1]), lon, lat
+    )
+    got = azimuth(*gradient(dist, geom), geom)
+    diff = np.abs(np.mod(got - (back + 180.0) + 180.0, 360.0) - 180.0)
+    far = dist > 300e3
+    far[[0, -1], :] = far[:, [0, -1]] = False
+    assert np.median(diff[far]) < 1e-3 and diff[far].max() < 2e-2
 
 
 # --- end to end: fluxes -------------------------------------------------------------------------
