@@ -45,7 +45,12 @@ import numpy as np
 import pyproj
 
 from crustflow.errors import CrustflowInputError
-from crustflow.geometry.projection import ProjectionFactors, lattice_factors, point_factors
+from crustflow.geometry.projection import (
+    FIELDS,
+    ProjectionFactors,
+    lattice_factors,
+    point_factors,
+)
 
 __all__ = [
     "WGS84",
@@ -290,22 +295,39 @@ class GridGeometry:
 
     @cached_property
     def x_face_factors(self) -> ProjectionFactors:
-        """Projection factors at the midpoints of the faces between columns, (nrow, ncol + 1)."""
-        return self._factors(_bounds(self.x, self.dx), self.y)
+        """Projection factors at the midpoints of the faces between columns, (nrow, ncol + 1);
+        only ``north`` is computed."""
+        return self._factors(_bounds(self.x, self.dx), self.y, ("north",))
 
     @cached_property
     def y_face_factors(self) -> ProjectionFactors:
-        """Projection factors at the midpoints of the faces between rows, (nrow + 1, ncol)."""
-        return self._factors(self.x, _bounds(self.y, self.dy))
+        """Projection factors at the midpoints of the faces between rows, (nrow + 1, ncol);
+        ``north_offset`` is not computed."""
+        return self._factors(self.x, _bounds(self.y, self.dy), ("east", "shear", "north"))
 
-    def _factors(self, x: np.ndarray, y: np.ndarray) -> ProjectionFactors:
+    @cached_property
+    def _ground_faces(self) -> tuple[np.ndarray, np.ndarray]:
+        east = abs(self.dy) / self.x_face_factors.north
+        north = abs(self.dx) / self.y_face_factors.east
+        for v in (east, north):
+            v.setflags(write=False)
+        return east, north
+
+    @cached_property
+    def _ground_areas(self) -> np.ndarray:
+        f = self.centre_factors
+        area = abs(self.dx * self.dy) / (f.east * f.north)
+        area.setflags(write=False)
+        return area
+
+    def _factors(self, x: np.ndarray, y: np.ndarray, fields=FIELDS) -> ProjectionFactors:
         if not self.scaled:
             raise CrustflowInputError(
                 "projection factors need a projected grid with its crs; build the geometry with "
                 "grid_geometry(x, y, crs)"
             )
         horizontal = self.crs.sub_crs_list[0] if self.crs.is_compound else self.crs
-        return lattice_factors(horizontal, x, y, x_step=self.dx, y_step=self.dy)
+        return lattice_factors(horizontal, x, y, x_step=self.dx, y_step=self.dy, fields=fields)
 
 
 def grid_geometry(x, y, crs, *, spacing: tuple[float, float] | None = None) -> GridGeometry:
@@ -415,7 +437,8 @@ def face_lengths(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     north_faces : numpy.ndarray
         Length of the faces crossed by the north flux (the parallels bounding the rows), m, shape
         (nrow + 1, 1); entry j is the face between rows j - 1 and j (0 and nrow: the grid edges).
-        Projected grids with a CRS: (nrow + 1, ncol).
+        Projected grids with a CRS: (nrow + 1, ncol). These two are read-only arrays cached on the
+        geometry.
 
     Notes
     -----
@@ -435,7 +458,7 @@ def face_lengths(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     """
     nrow = geom.shape[0]
     if geom.scaled:
-        return abs(geom.dy) / geom.x_face_factors.north, abs(geom.dx) / geom.y_face_factors.east
+        return geom._ground_faces
     if geom.kind == "projected":
         return np.full((nrow, 1), abs(geom.dy)), np.full((nrow + 1, 1), abs(geom.dx))
     phi_f = np.radians(_row_bounds(geom))
@@ -458,7 +481,8 @@ def cell_areas(geom: GridGeometry) -> np.ndarray:
     numpy.ndarray
         Area of each cell, m^2: shape (nrow, 1) for geographic grids (depends on the row only),
         (nrow, ncol) for projected grids with a CRS, (1, 1) for projected grids without one
-        (``|dx dy|``); broadcasts against (nrow, ncol).
+        (``|dx dy|``); broadcasts against (nrow, ncol). Read-only (cached on the geometry) for
+        projected grids with a CRS.
 
     Notes
     -----
@@ -480,7 +504,7 @@ def cell_areas(geom: GridGeometry) -> np.ndarray:
     (function q of the authalic latitude, eq. 3-12; equation number from memory).
     """
     if geom.scaled:
-        return abs(geom.dx * geom.dy) / geom.centre_factors.areal
+        return geom._ground_areas
     if geom.kind == "projected":
         return np.full((1, 1), abs(geom.dx * geom.dy))
     phi_f = np.radians(_row_bounds(geom))
@@ -609,7 +633,7 @@ def divergence(q_east, q_north, geom: GridGeometry) -> np.ndarray:
         p = geom.y_face_factors
         sheared = p.shear != 0
         if sheared.any():
-            shear_len = abs(geom.dx) * p.shear / p.areal
+            shear_len = abs(geom.dx) * p.shear / (p.east * p.north)
             np.add(flux_n, _face_values(qe, 0) * shear_len, out=flux_n, where=sheared)
     net = np.sign(geom.dx) * (flux_e[:, 1:] - flux_e[:, :-1]) + np.sign(geom.dy) * (
         flux_n[1:, :] - flux_n[:-1, :]

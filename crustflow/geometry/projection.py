@@ -30,13 +30,21 @@ its own coordinates: a strip of rows gets the whole grid's numbers bit for bit.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
 import numpy as np
 import pyproj
 
-__all__ = ["FACTOR_SPACING", "ProjectionFactors", "lattice_factors", "point_factors"]
+__all__ = [
+    "FACTOR_SPACING",
+    "FIELDS",
+    "ProjectionFactors",
+    "is_conformal",
+    "lattice_factors",
+    "point_factors",
+]
 
 #: Spacing of the lattice of exact pyproj evaluations, m (projected). Value derived: the factors
 #: vary on the scale of the Earth's radius, so bilinear interpolation errs by about
@@ -47,6 +55,14 @@ FACTOR_SPACING = 5000.0
 #: Shears ``|d| / c`` below this are set to exactly zero (conformal projections), dimensionless.
 #: Value derived: PROJ differentiates numerically, so a conformal projection's d is ~1e-11, not 0.
 CONFORMAL_SHEAR = 1e-8
+
+#: Names of the factors in :class:`ProjectionFactors`.
+FIELDS = ("east", "shear", "north", "north_offset")
+
+#: Offsets of the conformality probes from (0, 0) and from (500 km, 0), projected m (project
+#: choice: points near where most projections put their origin, but not on it: the origin of a
+#: polar projection is a pole, where the factors are degenerate).
+PROBES = ((1e5, 1e5), (-1e5, 1e5), (1e5, -1e5), (-1e5, -1e5), (2e5, 0.0))
 
 
 @dataclass(frozen=True)
@@ -133,7 +149,9 @@ def point_factors(crs: pyproj.CRS, x, y) -> ProjectionFactors:
     return ProjectionFactors(c, d, b, np.where(d == 0.0, 0.0, offset))
 
 
-def lattice_factors(crs: pyproj.CRS, x, y, *, x_step: float, y_step: float) -> ProjectionFactors:
+def lattice_factors(
+    crs: pyproj.CRS, x, y, *, x_step: float, y_step: float, fields: tuple[str, ...] = FIELDS
+) -> ProjectionFactors:
     """Projection factors on a grid of points, interpolated from an absolute lattice.
 
     Parameters
@@ -145,11 +163,15 @@ def lattice_factors(crs: pyproj.CRS, x, y, *, x_step: float, y_step: float) -> P
     x_step, y_step : float
         The grid's cell sizes, m: an axis whose cells are at least :data:`FACTOR_SPACING` wide is
         evaluated exactly at the query coordinates.
+    fields : tuple of str, optional
+        The factors wanted (default all); the others are NaN of shape (1, 1).
 
     Returns
     -------
     ProjectionFactors
-        Arrays of shape ``(y.size, x.size)``.
+        Arrays of shape ``(y.size, x.size)``. On a conformal projection (:func:`is_conformal`) only
+        k is interpolated: ``east`` and ``north`` are the same array, ``shear`` and
+        ``north_offset`` zeros of shape (1, 1).
 
     Notes
     -----
@@ -159,20 +181,50 @@ def lattice_factors(crs: pyproj.CRS, x, y, *, x_step: float, y_step: float) -> P
     exactly. Each value depends only on the query's own coordinates.
     """
     x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    conformal = is_conformal(crs)
+    wanted = ("east",) if conformal else fields
     xn, xi, xw = _axis_nodes(x, x_step)
     yn, yi, yw = _axis_nodes(y, y_step)
     nodes = point_factors(crs, xn[None, :], yn[:, None])
-    out = []
-    for v in (nodes.east, nodes.shear, nodes.north, nodes.north_offset):
+    out = {}
+    for name in wanted:
+        v = getattr(nodes, name)
         rows = v[yi] if yw is None else v[yi] * (1.0 - yw[:, None]) + v[yi + 1] * yw[:, None]
-        out.append(rows[:, xi] if xw is None else rows[:, xi] * (1.0 - xw) + rows[:, xi + 1] * xw)
-    bad = ~np.logical_and.reduce([np.isfinite(v) for v in out])
+        out[name] = rows[:, xi] if xw is None else rows[:, xi] * (1.0 - xw) + rows[:, xi + 1] * xw
+    bad = ~np.logical_and.reduce([np.isfinite(v) for v in out.values()])
     if bad.any():
         r, c = np.nonzero(bad)
         exact = point_factors(crs, x[c], y[r])
-        for v, name in zip(out, ("east", "shear", "north", "north_offset"), strict=True):
+        for name, v in out.items():
             v[r, c] = getattr(exact, name)
-    return ProjectionFactors(*out)
+    if conformal:
+        zero = np.zeros((1, 1))
+        return ProjectionFactors(out["east"], zero, out["east"], zero)
+    missing = np.full((1, 1), np.nan)
+    return ProjectionFactors(*(out.get(name, missing) for name in FIELDS))
+
+
+def is_conformal(crs: pyproj.CRS) -> bool:
+    """True when the projection is conformal (shear 0 and ``c = b``) at a fixed set of probes.
+
+    Parameters
+    ----------
+    crs : pyproj.CRS
+        Projected CRS.
+
+    Returns
+    -------
+    bool
+
+    Notes
+    -----
+    The probes are projected points 100-200 km from (0, 0) and from (500 km, 0) (a false easting
+    common to transverse Mercator zones); those outside the projection's domain are skipped, and
+    fewer than three valid probes count as not conformal. The answer depends on the CRS only, so
+    every strip of a grid takes the same path. Conformal: ``|d| <= CONFORMAL_SHEAR c`` (set to 0)
+    and ``|c - b| <= CONFORMAL_SHEAR c`` at every valid probe.
+    """
+    return _conformal(crs.to_wkt())
 
 
 def _axis_nodes(q: np.ndarray, step: float):
@@ -184,3 +236,20 @@ def _axis_nodes(q: np.ndarray, step: float):
     count = int(cell.max()) - first + 2
     nodes = (first + np.arange(count)) * FACTOR_SPACING
     return nodes, (cell - first).astype(int), q / FACTOR_SPACING - cell
+
+
+@functools.lru_cache(maxsize=64)
+def _conformal(wkt: str) -> bool:
+    crs = pyproj.CRS.from_wkt(wkt)
+    px = np.array([dx + x0 for x0 in (0.0, 5e5) for dx, _ in PROBES])
+    py = np.array([dy for _ in (0.0, 5e5) for _, dy in PROBES])
+    try:
+        with np.errstate(all="ignore"):
+            f = point_factors(crs, px, py)
+    except pyproj.exceptions.ProjError:
+        return False
+    ok = np.isfinite(f.east) & np.isfinite(f.north) & np.isfinite(f.shear)
+    if ok.sum() < 3:
+        return False
+    equal = np.abs(f.east - f.north) <= CONFORMAL_SHEAR * f.east
+    return bool(np.all(f.shear[ok] == 0.0) and np.all(equal[ok]))

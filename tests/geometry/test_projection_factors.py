@@ -38,7 +38,7 @@ from crustflow.geometry.grid import (
     gradient,
     grid_geometry,
 )
-from crustflow.geometry.projection import FACTOR_SPACING, point_factors
+from crustflow.geometry.projection import FACTOR_SPACING, is_conformal, point_factors
 from crustflow.physics import flexure
 from crustflow.variables import VARIABLES
 
@@ -97,6 +97,16 @@ def test_conic_factors_match_snyder_and_pyproj():
     np.testing.assert_allclose(f.areal, pj.areal_scale, rtol=1e-9)
 
 
+def test_conformal_projections_are_recognised():
+    # pyproj Proj.get_factors (angular distortion 0 on conformal projections, Snyder 1987): UTM,
+    # Lambert conformal conic and polar stereographic take the conformal path; Albers and Lambert
+    # azimuthal equal-area, and the spherical web Mercator on the WGS84 ellipsoid, do not.
+    for crs in ("EPSG:32633", LCC, "EPSG:3413", "EPSG:3031"):
+        assert is_conformal(pyproj.CRS(crs)), crs
+    for crs in (AEA, "EPSG:3035", "EPSG:3857"):
+        assert not is_conformal(pyproj.CRS(crs)), crs
+
+
 def test_equal_area_factors_keep_area_and_carry_the_shear():
     # pyproj Proj.get_factors: the Albers projection is equal-area (areal scale 1) but not conformal.
     lon, lat = np.array([70.0, 90.0, 110.0]), np.array([50.0, 35.0, 20.0])
@@ -123,8 +133,10 @@ def test_lattice_interpolation_matches_pyproj_at_every_cell(crs):
         got = geom.centre_factors
         np.testing.assert_allclose(got.east, exact.east, rtol=5e-7)
         np.testing.assert_allclose(got.north, exact.north, rtol=5e-7)
-        np.testing.assert_allclose(got.shear, exact.shear, atol=5e-7)
-        np.testing.assert_allclose(got.north_offset, exact.north_offset, atol=1e-5)  # degrees
+        shape = exact.east.shape  # conformal: shear and offset are zeros of shape (1, 1)
+        np.testing.assert_allclose(np.broadcast_to(got.shear, shape), exact.shear, atol=5e-7)
+        offset = np.broadcast_to(got.north_offset, shape)
+        np.testing.assert_allclose(offset, exact.north_offset, atol=1e-5)  # degrees
         xf = np.concatenate(([x[0] - cell / 2], 0.5 * (x[:-1] + x[1:]), [x[-1] + cell / 2]))
         exact_f = point_factors(pyproj.CRS(crs), xf[None, :], y[:, None])
         np.testing.assert_allclose(geom.x_face_factors.north, exact_f.north, rtol=5e-7)
