@@ -46,7 +46,6 @@ import pyproj
 
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.projection import (
-    FIELDS,
     ProjectionFactors,
     lattice_factors,
     point_factors,
@@ -295,15 +294,21 @@ class GridGeometry:
 
     @cached_property
     def x_face_factors(self) -> ProjectionFactors:
-        """Projection factors at the midpoints of the faces between columns, (nrow, ncol + 1);
-        only ``north`` is computed."""
-        return self._factors(_bounds(self.x, self.dx), self.y, ("north",))
+        """Projection factors at the midpoints of the faces between columns, (nrow, ncol + 1):
+        means of the two neighbouring cells' factors (linear extrapolation at the grid's edges;
+        second order, like the lattice interpolation); only ``north`` is computed."""
+        f = self.centre_factors
+        north = _face_mean(f.north, 1)
+        return ProjectionFactors(north, np.nan, north, np.nan)
 
     @cached_property
     def y_face_factors(self) -> ProjectionFactors:
-        """Projection factors at the midpoints of the faces between rows, (nrow + 1, ncol);
-        ``north_offset`` is not computed."""
-        return self._factors(self.x, _bounds(self.y, self.dy), ("east", "shear", "north"))
+        """Projection factors at the midpoints of the faces between rows, (nrow + 1, ncol), as
+        :attr:`x_face_factors`; ``north_offset`` is not computed."""
+        f = self.centre_factors
+        east = _face_mean(f.east, 0)
+        north = east if f.north is f.east else _face_mean(f.north, 0)
+        return ProjectionFactors(east, _face_mean(f.shear, 0), north, np.nan)
 
     @cached_property
     def _ground_faces(self) -> tuple[np.ndarray, np.ndarray]:
@@ -320,14 +325,14 @@ class GridGeometry:
         area.setflags(write=False)
         return area
 
-    def _factors(self, x: np.ndarray, y: np.ndarray, fields=FIELDS) -> ProjectionFactors:
+    def _factors(self, x: np.ndarray, y: np.ndarray) -> ProjectionFactors:
         if not self.scaled:
             raise CrustflowInputError(
                 "projection factors need a projected grid with its crs; build the geometry with "
                 "grid_geometry(x, y, crs)"
             )
         horizontal = self.crs.sub_crs_list[0] if self.crs.is_compound else self.crs
-        return lattice_factors(horizontal, x, y, x_step=self.dx, y_step=self.dy, fields=fields)
+        return lattice_factors(horizontal, x, y, x_step=self.dx, y_step=self.dy)
 
 
 def grid_geometry(x, y, crs, *, spacing: tuple[float, float] | None = None) -> GridGeometry:
@@ -845,6 +850,26 @@ def _meridian_arc(phi1: np.ndarray, phi2: np.ndarray, ell: Ellipsoid) -> np.ndar
     for k, weight in enumerate(_GL_WEIGHTS):
         total += weight * m_rad[..., k]
     return half * total
+
+
+def _face_mean(v: np.ndarray, axis: int) -> np.ndarray:
+    """The n + 1 face values of n cell values along ``axis``: neighbour means inside, linear
+    extrapolation at the ends; arrays of length 1 along ``axis`` (broadcast constants) pass."""
+    if v.shape[axis] == 1:
+        return v
+
+    def part(sl: slice) -> tuple:
+        return (sl, slice(None)) if axis == 0 else (slice(None), sl)
+
+    shape = list(v.shape)
+    shape[axis] += 1
+    out = np.empty(shape)
+    inner = out[part(slice(1, -1))]
+    np.add(v[part(slice(None, -1))], v[part(slice(1, None))], out=inner)
+    inner *= 0.5
+    out[part(slice(0, 1))] = 1.5 * v[part(slice(0, 1))] - 0.5 * v[part(slice(1, 2))]
+    out[part(slice(-1, None))] = 1.5 * v[part(slice(-1, None))] - 0.5 * v[part(slice(-2, -1))]
+    return out
 
 
 def _bounds(c: np.ndarray, step: float) -> np.ndarray:

@@ -125,12 +125,9 @@ def point_factors(crs: pyproj.CRS, x, y) -> ProjectionFactors:
     """
     crs = crs.sub_crs_list[0] if crs.is_compound else crs
     x, y = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(y, dtype=float))
-    to_lonlat = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
+    to_lonlat, proj, e2 = _tools(crs.to_wkt())
     lon, lat = to_lonlat.transform(x, y)
-    f = pyproj.Proj(crs).get_factors(lon, lat)
-    ell = crs.ellipsoid
-    a = float(ell.semi_major_metre)
-    e2 = 1.0 - (float(ell.semi_minor_metre) / a) ** 2
+    f = proj.get_factors(lon, lat)
     phi = np.radians(np.asarray(lat, dtype=float))
     w = np.sqrt(1.0 - e2 * np.sin(phi) ** 2)
     east_radius = np.cos(phi) / w  # N cos(phi) / a
@@ -176,7 +173,7 @@ def lattice_factors(
     Notes
     -----
     Lattice nodes sit at integer multiples of :data:`FACTOR_SPACING`; a query at ``q`` takes node
-    ``i = floor(q / L)`` and weight ``q / L - i`` along each axis (bilinear). Queries whose
+    ``i = floor(q / L)`` and weight ``q / L - i`` along each axis (bilinear: along x, then y). Queries whose
     interpolated factors are not finite (a node outside the projection's domain) are evaluated
     exactly. Each value depends only on the query's own coordinates.
     """
@@ -188,9 +185,18 @@ def lattice_factors(
     nodes = point_factors(crs, xn[None, :], yn[:, None])
     out = {}
     for name in wanted:
+        # Along x on the few lattice rows first, then along y (whole-row copies: cheap).
         v = getattr(nodes, name)
-        rows = v[yi] if yw is None else v[yi] * (1.0 - yw[:, None]) + v[yi + 1] * yw[:, None]
-        out[name] = rows[:, xi] if xw is None else rows[:, xi] * (1.0 - xw) + rows[:, xi + 1] * xw
+        cols = v[:, xi] if xw is None else v[:, xi] * (1.0 - xw) + v[:, xi + 1] * xw
+        if yw is None:
+            out[name] = cols[yi]
+        else:
+            lower = cols[yi]
+            lower *= (1.0 - yw)[:, None]
+            upper = cols[yi + 1]
+            upper *= yw[:, None]
+            lower += upper
+            out[name] = lower
     bad = ~np.logical_and.reduce([np.isfinite(v) for v in out.values()])
     if bad.any():
         r, c = np.nonzero(bad)
@@ -236,6 +242,17 @@ def _axis_nodes(q: np.ndarray, step: float):
     count = int(cell.max()) - first + 2
     nodes = (first + np.arange(count)) * FACTOR_SPACING
     return nodes, (cell - first).astype(int), q / FACTOR_SPACING - cell
+
+
+@functools.lru_cache(maxsize=16)
+def _tools(wkt: str) -> tuple[pyproj.Transformer, pyproj.Proj, float]:
+    """Inverse transformer, Proj object and first eccentricity squared of a projected CRS (building
+    them costs more than evaluating a strip's lattice)."""
+    crs = pyproj.CRS.from_wkt(wkt)
+    ell = crs.ellipsoid
+    e2 = 1.0 - (float(ell.semi_minor_metre) / float(ell.semi_major_metre)) ** 2
+    to_lonlat = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
+    return to_lonlat, pyproj.Proj(crs), e2
 
 
 @functools.lru_cache(maxsize=64)

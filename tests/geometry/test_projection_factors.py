@@ -119,8 +119,8 @@ def test_equal_area_factors_keep_area_and_carry_the_shear():
 @pytest.mark.parametrize("crs", [LCC, AEA, "EPSG:32633"])
 def test_lattice_interpolation_matches_pyproj_at_every_cell(crs):
     # pyproj Proj.get_factors at every cell centre and face vs the interpolated lattice
-    # (FACTOR_SPACING): 5e-7 relative (value derived: L^2 |k''| / 8, largest near the conic's
-    # northern edge, 2.3e-7 measured).
+    # (FACTOR_SPACING; faces: means of the neighbouring cells): 5e-7 relative (value derived:
+    # L^2 |k''| / 8, largest near the conic's northern edge, 2.3e-7 measured).
     cell = 1e3
     assert cell < FACTOR_SPACING  # lattice mode
     x, _ = axes(1500e3, cell)
@@ -128,7 +128,8 @@ def test_lattice_interpolation_matches_pyproj_at_every_cell(crs):
         x = x / 3 + 500e3  # a UTM zone
     for y0 in (2_000e3, 0.0, -1_400e3):  # strips of rows: north, middle, south
         y = y0 - cell * (np.arange(12) + 0.5)
-        geom = grid_geometry(x, y, crs, spacing=(cell, -cell))
+        step = x[1] - x[0]
+        geom = grid_geometry(x, y, crs, spacing=(step, -cell))
         exact = point_factors(pyproj.CRS(crs), x[None, :], y[:, None])
         got = geom.centre_factors
         np.testing.assert_allclose(got.east, exact.east, rtol=5e-7)
@@ -137,7 +138,7 @@ def test_lattice_interpolation_matches_pyproj_at_every_cell(crs):
         np.testing.assert_allclose(np.broadcast_to(got.shear, shape), exact.shear, atol=5e-7)
         offset = np.broadcast_to(got.north_offset, shape)
         np.testing.assert_allclose(offset, exact.north_offset, atol=1e-5)  # degrees
-        xf = np.concatenate(([x[0] - cell / 2], 0.5 * (x[:-1] + x[1:]), [x[-1] + cell / 2]))
+        xf = np.concatenate(([x[0] - step / 2], 0.5 * (x[:-1] + x[1:]), [x[-1] + step / 2]))
         exact_f = point_factors(pyproj.CRS(crs), xf[None, :], y[:, None])
         np.testing.assert_allclose(geom.x_face_factors.north, exact_f.north, rtol=5e-7)
 
