@@ -26,10 +26,11 @@ from conftest import SCENARIO, airy, write_grid
 from scipy.interpolate import RegularGridInterpolator
 
 import crustflow
-from crustflow import ModelParameters
+from crustflow import CrustflowInputError, ModelParameters
 from crustflow.cli import main
 from crustflow.constants import SECONDS_PER_YEAR
 from crustflow.geometry.grid import (
+    GridGeometry,
     azimuth,
     cell_areas,
     cell_spacings,
@@ -37,6 +38,7 @@ from crustflow.geometry.grid import (
     face_lengths,
     gradient,
     grid_geometry,
+    ground_steps,
 )
 from crustflow.geometry.projection import FACTOR_SPACING, is_conformal, point_factors
 from crustflow.physics import flexure
@@ -327,14 +329,55 @@ def test_conic_grid_agrees_with_geographic_grid(conic_and_geographic):
         assert np.median(rel) <= tol, name
 
 
-def test_equal_area_grid_flux_matches_truth():
-    # Non-conformal projection (Albers equal-area conic): the shear term keeps the flux within
-    # 0.2 % (median) of the ellipsoidal truth as well.
+def test_equal_area_grid_matches_truth_and_geographic_grid(conic_and_geographic):
+    # Non-conformal projection (Albers equal-area conic): with the shear term the flux stays within
+    # 0.2 % (median) of the ellipsoidal truth, and the thickening rate (divergence with the shear
+    # flux through the faces between rows) agrees with the geographic grid's (interpolated by
+    # scipy RegularGridInterpolator) to 0.5 % (median).
     x, y = axes(1500e3, 20e3)
     dist = geodesic_distance(AEA, x, y, CENTRE)
     h, slope = plateau(dist)
-    err = relative_errors(run(h, x, y, AEA), slope, dist)
-    assert np.median(err) <= 2e-3
+    ds = run(h, x, y, AEA)
+    assert np.median(relative_errors(ds, slope, dist)) <= 2e-3
+    geo, _, _, glon, glat = conic_and_geographic["geographic"]
+    lon, lat = to_lonlat(AEA).transform(*np.meshgrid(x, y))
+    interp = RegularGridInterpolator((glat[::-1], glon), geo["thickening_rate"].values[::-1])
+    other = interp(np.column_stack([lat.ravel(), lon.ravel()]))
+    mine = ds["thickening_rate"].values.ravel()
+    big = (truth(slope) > 0.1 * truth(slope).max()).ravel()
+    big &= np.abs(mine) > 0.1 * np.nanmax(np.abs(mine))
+    assert np.median(np.abs(mine[big] / other[big] - 1.0)) <= 5e-3
+
+
+def test_ground_steps_match_geodesics():
+    # pyproj Geod.inv: a 100 m step in any grid direction on the Albers grid has the ground length
+    # and (with the frame's north offset) the true azimuth that ground_steps gives; 1e-6 relative
+    # and 1e-3 degree.
+    x, y = axes(1500e3, 100e3)
+    geom = grid_geometry(x, y, AEA)
+    rng = np.random.default_rng(2)
+    px, py = rng.uniform(-1.4e6, 1.4e6, size=(2, 50))
+    theta = rng.uniform(0, 2 * np.pi, 50)
+    te, tn = np.sin(theta), np.cos(theta)
+    scale, ge, gn = ground_steps(geom, px, py, te, tn)
+    ll = to_lonlat(AEA)
+    lon1, lat1 = ll.transform(px - 50 * te, py - 50 * tn)
+    lon2, lat2 = ll.transform(px + 50 * te, py + 50 * tn)
+    az, _, length = WGS84_GEOD.inv(lon1, lat1, lon2, lat2)
+    np.testing.assert_allclose(scale * 100.0, length, rtol=1e-6)
+    f = point_factors(pyproj.CRS(AEA), px, py)
+    lon, lat = ll.transform(px, py)
+    gamma = pyproj.Proj(AEA).get_factors(lon, lat).meridian_convergence
+    want = np.degrees(np.arctan2(ge, gn)) + gamma + f.north_offset
+    diff = np.mod(want - az + 180.0, 360.0) - 180.0
+    assert np.abs(diff).max() < 1e-3
+
+
+def test_factors_need_the_crs():
+    geom = GridGeometry("projected", np.arange(3.0), np.arange(2.0))
+    assert not geom.scaled
+    with pytest.raises(CrustflowInputError, match="projection factors need a projected grid"):
+        geom.centre_factors  # noqa: B018
 
 
 # --- strips and filters ------------------------------------------------------------------------
