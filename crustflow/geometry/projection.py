@@ -56,6 +56,13 @@ FACTOR_SPACING = 5000.0
 #: Value derived: PROJ differentiates numerically, so a conformal projection's d is ~1e-11, not 0.
 CONFORMAL_SHEAR = 1e-8
 
+#: Distance from a pole, degrees of latitude, within which the factors are taken as isotropic
+#: (``c = b = sqrt(areal scale)``, ``d = 0``). Value derived: dividing PROJ's derivatives by
+#: ``N cos(phi)`` loses all precision within about 100 m (1e-3 degree) of a pole (measured with
+#: EPSG:3413 and EPSG:3031); at 0.01 degree from the pole of a polar azimuthal projection its h and
+#: k differ by less than 1e-9, and a polar stereographic projection is conformal anyway.
+POLE_GUARD = 0.01
+
 #: Names of the factors in :class:`ProjectionFactors`.
 FIELDS = ("east", "shear", "north", "north_offset")
 
@@ -115,7 +122,10 @@ def point_factors(crs: pyproj.CRS, x, y) -> ProjectionFactors:
     decomposition ``J = J_F Q`` (Q a rotation) gives ``c = |(J00, J01)|``,
     ``d = (J00 J10 + J01 J11) / c``, ``b = det J / c``: the rotation Q turns true north onto the
     ground direction of grid north, whose true azimuth is ``atan2(-J01, J00)`` (equal to PROJ's
-    meridian convergence on a conformal projection; checked against ``pyproj.Geod.inv``).
+    meridian convergence on a conformal projection; checked against ``pyproj.Geod.inv``). Within
+    :data:`POLE_GUARD` of a pole, where ``N cos(phi)`` vanishes, ``c = b = sqrt(areal scale)``
+    and ``d = 0`` (the pole is the centre of the polar projections that contain it, where they
+    are not distorted in shape).
 
     References
     ----------
@@ -143,6 +153,11 @@ def point_factors(crs: pyproj.CRS, x, y) -> ProjectionFactors:
         d = np.where(np.abs(d) <= CONFORMAL_SHEAR * c, 0.0, d)
     convergence = np.asarray(f.meridian_convergence, dtype=float).reshape(x.shape)
     offset = np.mod(np.degrees(np.arctan2(-j01, j00)) - convergence + 180.0, 360.0) - 180.0
+    polar = np.abs(np.asarray(lat, dtype=float)).reshape(x.shape) >= 90.0 - POLE_GUARD
+    if polar.any():
+        iso = np.sqrt(np.asarray(f.areal_scale, dtype=float).reshape(x.shape))
+        c, b = np.where(polar, iso, c), np.where(polar, iso, b)
+        d = np.where(polar, 0.0, d)
     return ProjectionFactors(c, d, b, np.where(d == 0.0, 0.0, offset))
 
 

@@ -109,6 +109,29 @@ def test_conformal_projections_are_recognised():
         assert not is_conformal(pyproj.CRS(crs)), crs
 
 
+@pytest.mark.parametrize("crs", ["EPSG:3413", "EPSG:3031", "EPSG:3574"])
+def test_factors_on_a_cell_centred_on_the_pole(crs):
+    # pyproj Proj.get_factors (PROJ's h, computed from the latitude derivatives, stays exact at a
+    # pole): polar stereographic (north and south) and polar Lambert azimuthal equal-area grids
+    # with a cell centred on the pole and lattice nodes on it get finite, right factors there and
+    # around; a plane in grid coordinates has a finite gradient everywhere.
+    x = np.arange(-10, 11) * 1000.0
+    y = x[::-1].copy()
+    geom = grid_geometry(x, y, crs)
+    xx, yy = np.meshgrid(x, y)
+    lon, lat = to_lonlat(crs).transform(xx, yy)
+    h = pyproj.Proj(crs).get_factors(lon, lat).meridional_scale
+    np.testing.assert_allclose(np.broadcast_to(geom.centre_factors.north, h.shape), h, rtol=1e-6)
+    np.testing.assert_allclose(np.broadcast_to(geom.centre_factors.east, h.shape), h, rtol=1e-5)
+    ge, gn = gradient(0.01 * xx - 0.02 * yy, geom)
+    f = geom.centre_factors
+    np.testing.assert_allclose(
+        ge, 0.01 * f.east - 0.02 * f.shear, rtol=1e-9
+    )  # d_east = c f_x + d f_y
+    np.testing.assert_allclose(gn, -0.02 * geom.centre_factors.north, rtol=1e-9)
+    assert np.isfinite(np.broadcast_to(cell_areas(geom), geom.shape)).all()
+
+
 def test_equal_area_factors_keep_area_and_carry_the_shear():
     # pyproj Proj.get_factors: the Albers projection is equal-area (areal scale 1) but not conformal.
     lon, lat = np.array([70.0, 90.0, 110.0]), np.array([50.0, 35.0, 20.0])
