@@ -63,6 +63,10 @@ CONFORMAL_SHEAR = 1e-8
 #: k differ by less than 1e-9, and a polar stereographic projection is conformal anyway.
 POLE_GUARD = 0.01
 
+#: Rows interpolated at a time, so that a whole grid's factors need no full-size temporaries
+#: (project choice).
+ROW_BLOCK = 256
+
 #: Names of the factors in :class:`ProjectionFactors`.
 FIELDS = ("east", "shear", "north", "north_offset")
 
@@ -203,15 +207,7 @@ def lattice_factors(
         # Along x on the few lattice rows first, then along y (whole-row copies: cheap).
         v = getattr(nodes, name)
         cols = v[:, xi] if xw is None else v[:, xi] * (1.0 - xw) + v[:, xi + 1] * xw
-        if yw is None:
-            out[name] = cols[yi]
-        else:
-            lower = cols[yi]
-            lower *= (1.0 - yw)[:, None]
-            upper = cols[yi + 1]
-            upper *= yw[:, None]
-            lower += upper
-            out[name] = lower
+        out[name] = cols[yi] if yw is None else _rows_between(cols, yi, yw)
     bad = ~np.logical_and.reduce([np.isfinite(v) for v in out.values()])
     if bad.any():
         r, c = np.nonzero(bad)
@@ -246,6 +242,20 @@ def is_conformal(crs: pyproj.CRS) -> bool:
     and ``|c - b| <= CONFORMAL_SHEAR c`` at every valid probe.
     """
     return _conformal(crs.to_wkt())
+
+
+def _rows_between(cols: np.ndarray, yi: np.ndarray, yw: np.ndarray) -> np.ndarray:
+    """Rows interpolated between lattice rows ``yi`` and ``yi + 1`` with weights ``yw``, in blocks
+    of :data:`ROW_BLOCK` rows (elementwise, so the blocking does not change any value)."""
+    out = np.empty((yi.size, cols.shape[1]))
+    for start in range(0, yi.size, ROW_BLOCK):
+        rows = slice(start, start + ROW_BLOCK)
+        lower = cols[yi[rows]]
+        lower *= (1.0 - yw[rows])[:, None]
+        upper = cols[yi[rows] + 1]
+        upper *= yw[rows][:, None]
+        np.add(lower, upper, out=out[rows])
+    return out
 
 
 def _axis_nodes(q: np.ndarray, step: float):
