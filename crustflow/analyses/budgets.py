@@ -26,12 +26,13 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 import pyogrio
+import pyproj
 import shapely
 import xarray as xr
 
 from crustflow.errors import CrustflowInputError
 from crustflow.figures import budgets as budget_plots
-from crustflow.geometry.grid import FULL_TURN, cell_areas
+from crustflow.geometry.grid import FULL_TURN, cell_areas, ground_steps
 from crustflow.io.features import (
     KINDS,
     FieldGrid,
@@ -109,11 +110,25 @@ def _path_samples(grid: FieldGrid, geom, spacing: float) -> PathPoints:
     parts, start = [], 0.0
     for part in shapely.get_parts(geom):
         xy = shapely.get_coordinates(part)
-        p = walk(xy[:, 0], xy[:, 1], grid.geod, spacing, 0.5, start)
+        p = _on_ground(grid, walk(xy[:, 0], xy[:, 1], grid.geod, spacing, 0.5, start), start)
         parts.append(p)
         start += float(p.ds.sum())
     names = [f.name for f in dataclasses.fields(PathPoints)]
     return PathPoints(*(np.concatenate([getattr(p, n) for p in parts]) for n in names))
+
+
+def _on_ground(grid: FieldGrid, p: PathPoints, start: float) -> PathPoints:
+    """Projected grids with a CRS: piece lengths, directions and distances on the ground.
+
+    Each piece's projected length is scaled by the projection factors at its midpoint and its
+    direction turned into the local frame of the flux components
+    (:func:`crustflow.geometry.grid.ground_steps`); distances are summed from the true lengths.
+    """
+    if not grid.geometry.scaled or p.ds.size == 0:
+        return p
+    scale, east, north = ground_steps(grid.geometry, p.px, p.py, p.east, p.north)
+    ds = p.ds * scale
+    return PathPoints(p.px, p.py, ds, east, north, start + np.cumsum(ds) - 0.5 * ds)
 
 
 def _line_integral(grid: FieldGrid, flux, geom, spacing: float) -> dict:
@@ -190,9 +205,10 @@ def section_budgets(fields: xr.Dataset, sections, *, spacing: float | None = Non
     Geographic grids: segments are geodesics on the CRS's ellipsoid; L and the azimuths ``alpha``
     at the midpoints come from ``pyproj.Geod`` (``inv``, ``fwd``); ``t = (sin alpha, cos alpha)``
     in the local true east/north frame, so ``n`` has azimuth ``alpha + 90`` degrees.
-    Projected grids: straight segments in projected metres and grid east/north components, as in
-    the maps' finite-volume divergence; the projection's scale factor is not applied (as in the
-    maps; at most 0.04 % inside a UTM zone).
+    Projected grids: straight segments in projected coordinates; each piece's length and
+    direction are taken on the ground with the projection factors at its midpoint
+    (:func:`crustflow.geometry.grid.ground_steps`, as in the maps' finite-volume divergence), so
+    L and the lengths are true ellipsoidal lengths.
 
     Samples outside the grid or on nodata are skipped: ``covered_fraction`` is the covered length
     over the total length.
@@ -367,6 +383,9 @@ def region_budgets(fields: xr.Dataset, regions, *, spacing: float | None = None)
     partly covered cell's area is off by at most that share (4e-4 for 0.05-degree cells at 45
     degrees), and fully covered cells are exact. ``area_km2`` is the geodesic polygon area
     (``pyproj.Geod.geometry_area_perimeter``); ``covered_fraction`` is capped at 1.
+    Projected grids: cell areas are true areas (projected area over the areal scale of the
+    projection); ``area_km2`` is the geodesic area of the polygon, its edges densified to the
+    sample spacing in projected coordinates.
 
     Grids spanning all longitudes: a polygon crossing the antimeridian may be given with
     continuous longitudes beyond 180 (or below -180) or split at the seam into a MultiPolygon.
@@ -389,14 +408,14 @@ def _region_rows(grid: FieldGrid, feats: gpd.GeoDataFrame, step: float) -> list[
     flux = _flux(grid)
     rate = grid.values("thickening_rate")
     uplift = grid.values("uplift_rate") if "uplift_rate" in grid.fields else None
-    area_rows = np.broadcast_to(cell_areas(grid.geometry), (grid.geometry.shape[0], 1))[:, 0]
+    cell_area = np.broadcast_to(cell_areas(grid.geometry), grid.geometry.shape)
     rows = []
     for name, poly in zip(feats["name"], feats.geometry, strict=True):
         area_poly = poly
         if grid.geographic:
             area_poly = geodesic_densify(poly, grid.geod, step)
         r, c, share = _cell_shares(grid, area_poly)
-        w = share * area_rows[r]
+        w = share * cell_area[r, c]
         ok = np.isfinite(rate[r, c])
         rings = _outward_rings(poly)
         res = _line_integral(grid, flux, rings, step)
@@ -413,7 +432,7 @@ def _region_rows(grid: FieldGrid, feats: gpd.GeoDataFrame, step: float) -> list[
         if grid.geographic:
             area = abs(grid.geod.geometry_area_perimeter(poly)[0])
         else:
-            area = float(poly.area)
+            area = _ground_area(grid, poly, step)
         rows.append(
             {
                 "name": name,
@@ -430,6 +449,24 @@ def _region_rows(grid: FieldGrid, feats: gpd.GeoDataFrame, step: float) -> list[
             }
         )
     return rows
+
+
+def _ground_area(grid: FieldGrid, poly, step: float) -> float:
+    """Area of a projected polygon on the ellipsoid, m^2: edges densified to ``step`` (m),
+    transformed to longitude/latitude and measured with ``pyproj.Geod.geometry_area_perimeter``
+    (projected area when the grid has no CRS)."""
+    if not grid.geometry.scaled:
+        return float(poly.area)
+    crs = grid.geometry.crs
+    crs = crs.sub_crs_list[0] if crs.is_compound else crs
+    to_lonlat = pyproj.Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
+    lonlat = shapely.transform(
+        shapely.segmentize(poly, step),
+        lambda xy: np.column_stack(to_lonlat.transform(xy[:, 0], xy[:, 1])),
+    )
+    ell = grid.geometry.ellipsoid
+    geod = pyproj.Geod(a=ell.semi_major, f=ell.flattening)
+    return abs(geod.geometry_area_perimeter(lonlat)[0])
 
 
 def _mean(values: np.ndarray, weights: np.ndarray) -> float:

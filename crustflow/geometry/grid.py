@@ -3,15 +3,18 @@
 Grids are regular 2-D numpy arrays indexed ``[row, col] = [y, x]`` with 1-D cell-centre coordinates
 ``x`` (length ncol) and ``y`` (length nrow) in either order. Two kinds of grid:
 
-* ``"projected"``: x, y are easting and northing in metres. Distances are projected metres; the
-  projection's scale factor (map-scale distortion, e.g. at most 0.04 % inside a UTM zone) is not
-  corrected.
+* ``"projected"``: x, y are easting and northing in metres. Distances and areas are true ones on
+  the CRS's ellipsoid: projected metres divided by the projection's per-cell scale factors, from
+  pyproj's projection factors (:mod:`crustflow.geometry.projection`). A projected grid built
+  without a CRS keeps projected metres as they are.
 * ``"geographic"``: x is longitude and y latitude in degrees on the CRS's ellipsoid (never a sphere,
   unless the CRS itself is defined on one).
 
-Vectors are (east, north) components per metre in the local metric frame (grid frame for projected
-grids); azimuths are degrees clockwise from true north. Everything here is pure numpy on in-memory
-arrays, apart from the calls to pyproj for the CRS and the meridian convergence.
+Vectors are (east, north) components per metre in the local metric frame (on projected grids the
+frame whose north axis is the ground direction of grid north, see
+:mod:`crustflow.geometry.projection`); azimuths are degrees clockwise from true north. Everything
+here is pure numpy on in-memory arrays, apart from the calls to pyproj for the CRS, the projection
+factors and the meridian convergence.
 
 Whole-globe grids and the poles:
 
@@ -36,11 +39,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import pyproj
 
 from crustflow.errors import CrustflowInputError
+from crustflow.geometry.projection import (
+    ProjectionFactors,
+    lattice_factors,
+    point_factors,
+)
 
 __all__ = [
     "WGS84",
@@ -53,6 +62,7 @@ __all__ = [
     "face_lengths",
     "grid_geometry",
     "gradient",
+    "ground_steps",
     "meridian_convergence",
 ]
 
@@ -271,6 +281,59 @@ class GridGeometry:
         span = self.x.size * abs(self.dx)
         return abs(span - FULL_TURN) <= PERIOD_RTOL * FULL_TURN
 
+    @property
+    def scaled(self) -> bool:
+        """True for a projected grid with a CRS: its metres are corrected by projection factors."""
+        return self.kind == "projected" and self.crs is not None
+
+    @cached_property
+    def centre_factors(self) -> ProjectionFactors:
+        """Projection factors at the cell centres, arrays of shape (nrow, ncol) (projected grids
+        with a CRS only; see :func:`crustflow.geometry.projection.lattice_factors`)."""
+        return self._factors(self.x, self.y)
+
+    @cached_property
+    def x_face_factors(self) -> ProjectionFactors:
+        """Projection factors at the midpoints of the faces between columns, (nrow, ncol + 1):
+        means of the two neighbouring cells' factors (linear extrapolation at the grid's edges;
+        second order, like the lattice interpolation); only ``north`` is computed."""
+        f = self.centre_factors
+        north = _face_mean(f.north, 1)
+        return ProjectionFactors(north, np.nan, north, np.nan)
+
+    @cached_property
+    def y_face_factors(self) -> ProjectionFactors:
+        """Projection factors at the midpoints of the faces between rows, (nrow + 1, ncol), as
+        :attr:`x_face_factors`; ``north_offset`` is not computed."""
+        f = self.centre_factors
+        east = _face_mean(f.east, 0)
+        north = east if f.north is f.east else _face_mean(f.north, 0)
+        return ProjectionFactors(east, _face_mean(f.shear, 0), north, np.nan)
+
+    @cached_property
+    def _ground_faces(self) -> tuple[np.ndarray, np.ndarray]:
+        east = abs(self.dy) / self.x_face_factors.north
+        north = abs(self.dx) / self.y_face_factors.east
+        for v in (east, north):
+            v.setflags(write=False)
+        return east, north
+
+    @cached_property
+    def _ground_areas(self) -> np.ndarray:
+        f = self.centre_factors
+        area = abs(self.dx * self.dy) / (f.east * f.north)
+        area.setflags(write=False)
+        return area
+
+    def _factors(self, x: np.ndarray, y: np.ndarray) -> ProjectionFactors:
+        if not self.scaled:
+            raise CrustflowInputError(
+                "projection factors need a projected grid with its crs; build the geometry with "
+                "grid_geometry(x, y, crs)"
+            )
+        horizontal = self.crs.sub_crs_list[0] if self.crs.is_compound else self.crs
+        return lattice_factors(horizontal, x, y, x_step=self.dx, y_step=self.dy)
+
 
 def grid_geometry(x, y, crs, *, spacing: tuple[float, float] | None = None) -> GridGeometry:
     """Build and validate the geometry of a regular grid from its coordinates and CRS.
@@ -332,20 +395,27 @@ def cell_spacings(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     Returns
     -------
     east, north : numpy.ndarray
-        Positive spacings along the parallel and the meridian at each row's centre, m; shape
-        (nrow, 1) for geographic grids, (1, 1) for projected grids.
+        Positive spacings along the parallel and the meridian at each row's centre (geographic
+        grids, shape (nrow, 1)), or true lengths of one grid step along x and along y at each cell
+        (projected grids with a CRS, shape (nrow, ncol)), m. Projected grids without a CRS:
+        ``|dx|``, ``|dy|``, shape (1, 1).
 
     Notes
     -----
     Geographic: ``east = N(phi) cos(phi) |dlambda|``, ``north = M(phi) |dphi|`` with
     ``W = sqrt(1 - e2 sin^2 phi)``, ``N = a / W``, ``M = a (1 - e2) / W^3``.
-    Projected: ``|dx|``, ``|dy|``.
+    Projected, with the projection factors c, d, b of :mod:`crustflow.geometry.projection`:
+    ``east = |dx| sqrt(1 + (d / b)^2) / c``, ``north = |dy| / b``; for a conformal projection
+    (d = 0, c = b = k) both are projected lengths divided by the point scale factor k.
 
     References
     ----------
     Snyder, J. P. (1987). Map Projections: A Working Manual. USGS Professional Paper 1395, ch. 4
     (radii of curvature; chapter from memory).
     """
+    if geom.scaled:
+        f = geom.centre_factors
+        return abs(geom.dx) * np.hypot(1.0, f.shear / f.north) / f.east, abs(geom.dy) / f.north
     if geom.kind == "projected":
         return np.full((1, 1), abs(geom.dx)), np.full((1, 1), abs(geom.dy))
     phi = np.radians(geom.y)[:, None]
@@ -367,10 +437,13 @@ def face_lengths(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     -------
     east_faces : numpy.ndarray
         Length of the faces crossed by the east flux (the meridian segments bounding each row), m,
-        shape (nrow, 1).
+        shape (nrow, 1); projected grids with a CRS: (nrow, ncol + 1), entry i the face between
+        columns i - 1 and i.
     north_faces : numpy.ndarray
         Length of the faces crossed by the north flux (the parallels bounding the rows), m, shape
         (nrow + 1, 1); entry j is the face between rows j - 1 and j (0 and nrow: the grid edges).
+        Projected grids with a CRS: (nrow + 1, ncol). These two are read-only arrays cached on the
+        geometry.
 
     Notes
     -----
@@ -378,13 +451,19 @@ def face_lengths(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     parallels, by Gauss-Legendre quadrature; north faces at latitude ``phi_f`` are parallel arcs
     ``N(phi_f) cos(phi_f) |dlambda|`` (exact), zero at a pole. Bounding parallels are midway between
     row centres (half a step beyond the edge rows), clipped to +-90 degrees.
-    Projected: ``|dy|`` and ``|dx|``.
+    Projected, with the projection factors c, d, b of :mod:`crustflow.geometry.projection` at
+    the face's midpoint: ``|dy| / b`` (true length of a face between columns) and ``|dx| / c``
+    (a face between rows: its true length on a conformal projection; on others its extent across
+    the north component, the east component crossing it through the shear term of
+    :func:`divergence`). Without a CRS: ``|dy|`` and ``|dx|``.
 
     References
     ----------
     Snyder, J. P. (1987). Map Projections: A Working Manual. USGS Professional Paper 1395, ch. 4.
     """
     nrow = geom.shape[0]
+    if geom.scaled:
+        return geom._ground_faces
     if geom.kind == "projected":
         return np.full((nrow, 1), abs(geom.dy)), np.full((nrow + 1, 1), abs(geom.dx))
     phi_f = np.radians(_row_bounds(geom))
@@ -406,7 +485,9 @@ def cell_areas(geom: GridGeometry) -> np.ndarray:
     -------
     numpy.ndarray
         Area of each cell, m^2: shape (nrow, 1) for geographic grids (depends on the row only),
-        (1, 1) for projected grids (``|dx dy|``); broadcasts against (nrow, ncol).
+        (nrow, ncol) for projected grids with a CRS, (1, 1) for projected grids without one
+        (``|dx dy|``); broadcasts against (nrow, ncol). Read-only (cached on the geometry) for
+        projected grids with a CRS.
 
     Notes
     -----
@@ -418,12 +499,17 @@ def cell_areas(geom: GridGeometry) -> np.ndarray:
     ``q2 - q1 = (1 - e2) [ds (1 + e2 s1 s2) / ((1 - e2 s1^2)(1 - e2 s2^2))
     + atanh(e ds / (1 - e2 s1 s2)) / e]``; for a sphere the atanh term is ``ds``.
     Bounding parallels as in :func:`face_lengths`.
+    Projected: ``|dx dy| / (c b)``, the projected area over the areal scale at the cell centre
+    (``k^2`` on a conformal projection; 1 on an equal-area one); midpoint rule, relative error
+    about ``(dx^2 + dy^2) / (24 R^2)`` for a cell of sides dx, dy (value derived).
 
     References
     ----------
     Snyder, J. P. (1987). Map Projections: A Working Manual. USGS Professional Paper 1395, ch. 3
     (function q of the authalic latitude, eq. 3-12; equation number from memory).
     """
+    if geom.scaled:
+        return geom._ground_areas
     if geom.kind == "projected":
         return np.full((1, 1), abs(geom.dx * geom.dy))
     phi_f = np.radians(_row_bounds(geom))
@@ -455,8 +541,10 @@ def gradient(field, geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     Returns
     -------
     d_east, d_north : numpy.ndarray, shape (nrow, ncol)
-        Derivatives towards east and north, u/m (grid east/north on projected grids). NaN where the
-        cell is NaN, or (per component) where both neighbours along that axis are missing.
+        Derivatives towards east and north, u/m (on projected grids along the local frame of
+        :mod:`crustflow.geometry.projection`). NaN where the cell is NaN, or (per component) where
+        both neighbours along that axis are missing (on non-conformal projections the east
+        component also needs the north derivative).
 
     Notes
     -----
@@ -469,8 +557,11 @@ def gradient(field, geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     as in :func:`cell_spacings`); the east component is NaN on a row centred on a pole. When the
     grid spans all longitudes (:attr:`GridGeometry.periodic_x`) the first and last columns are
     neighbours across the antimeridian, so they get central differences like any other column.
-    Projected grids: derivatives per projected metre; the projection's scale factor is not
-    corrected (at most 0.04 % inside a UTM zone).
+    Projected grids with a CRS: with the grid derivatives ``f_x``, ``f_y`` per projected metre and
+    the projection factors c, d, b at the cell centre (:mod:`crustflow.geometry.projection`),
+    ``d_east = c f_x + d f_y``, ``d_north = b f_y`` (the transpose of the projection's Jacobian);
+    on a conformal projection this is ``k`` times the derivative per projected metre. Without a
+    CRS: derivatives per projected metre.
 
     References
     ----------
@@ -478,7 +569,15 @@ def gradient(field, geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     """
     f = _checked_field(field, geom, "field")
     if geom.kind == "projected":
-        return _axis_derivative(f, 1, geom.dx), _axis_derivative(f, 0, geom.dy)
+        fx, fy = _axis_derivative(f, 1, geom.dx), _axis_derivative(f, 0, geom.dy)
+        if not geom.scaled:
+            return fx, fy
+        p = geom.centre_factors
+        east = p.east * fx
+        sheared = p.shear != 0
+        if sheared.any():
+            np.add(east, p.shear * fy, out=east, where=sheared)
+        return east, p.north * fy
     phi = np.radians(geom.y)[:, None]
     n_rad, m_rad = _radii(phi, geom.ellipsoid)
     east_scale = np.where(np.abs(phi) >= math.radians(POLE_LATITUDE), np.nan, n_rad * np.cos(phi))
@@ -516,6 +615,10 @@ def divergence(q_east, q_north, geom: GridGeometry) -> np.ndarray:
     (:attr:`GridGeometry.periodic_x`) the west face of the first column and the east face of the
     last column are the same meridian and carry the same flux (mean of the two columns), so the
     antimeridian is an ordinary interior face; otherwise longitude does not wrap around.
+    Projected grids with a CRS: true face lengths and cell areas from the projection factors c, d,
+    b; on a non-conformal projection a face between rows also passes
+    ``q_east |dx| d / (c b)`` (the shear term, d at the face), the exact flux through the face's
+    ground image (cross product of q with it).
 
     References
     ----------
@@ -531,11 +634,53 @@ def divergence(q_east, q_north, geom: GridGeometry) -> np.ndarray:
     east_len, north_len = face_lengths(geom)
     flux_e = _face_values(qe, 1, periodic=geom.periodic_x) * east_len  # (nrow, ncol + 1)
     flux_n = _face_values(qn, 0) * north_len  # (nrow + 1, ncol)
+    if geom.scaled:
+        p = geom.y_face_factors
+        sheared = p.shear != 0
+        if sheared.any():
+            shear_len = abs(geom.dx) * p.shear / (p.east * p.north)
+            np.add(flux_n, _face_values(qe, 0) * shear_len, out=flux_n, where=sheared)
     net = np.sign(geom.dx) * (flux_e[:, 1:] - flux_e[:, :-1]) + np.sign(geom.dy) * (
         flux_n[1:, :] - flux_n[:-1, :]
     )
     div = net / cell_areas(geom)
     return np.where(nodata, np.nan, div)
+
+
+def ground_steps(geom: GridGeometry, x, y, east, north) -> tuple[np.ndarray, ...]:
+    """True lengths and directions of short grid steps at arbitrary points.
+
+    Parameters
+    ----------
+    geom : GridGeometry
+    x, y : array_like
+        Points, in the grid's coordinates (broadcast together with ``east``, ``north``).
+    east, north : array_like
+        Unit step directions in the grid's coordinates (grid east/north on projected grids).
+
+    Returns
+    -------
+    scale, ground_east, ground_north : numpy.ndarray
+        Ground metres per projected metre along the step (1 where the grid is not a projected
+        grid with a CRS), and the step's unit direction in the local frame of :func:`gradient`.
+
+    Notes
+    -----
+    With the projection factors c, d, b at the point (:mod:`crustflow.geometry.projection`, exact
+    pyproj values), a grid step ``t`` is the ground vector ``(t_x / c, (t_y - d t_x / c) / b)``
+    (the inverse Jacobian); scale is its length. Geographic grids and projected grids without a
+    CRS return the inputs with scale 1.
+    """
+    east, north = np.asarray(east, dtype=float), np.asarray(north, dtype=float)
+    if not geom.scaled:
+        return np.ones(np.broadcast(x, y, east).shape), east + 0.0, north + 0.0
+    horizontal = geom.crs.sub_crs_list[0] if geom.crs.is_compound else geom.crs
+    f = point_factors(horizontal, x, y)
+    ge = east / f.east
+    gn = (north - f.shear * ge) / f.north
+    scale = np.hypot(ge, gn)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return scale, ge / scale, gn / scale
 
 
 def meridian_convergence(geom: GridGeometry) -> np.ndarray:
@@ -613,14 +758,20 @@ def azimuth(east, north, geom: GridGeometry) -> np.ndarray:
     ``azimuth = atan2(east, north) + gamma`` reduced to [0, 360), with gamma from
     :func:`meridian_convergence` (0 on geographic grids). On a conformal projection (UTM, Lambert
     conformal conic, polar stereographic, Mercator) this equals the ``pyproj.Geod.inv`` forward
-    azimuth from a cell centre to a point a short distance along the vector; on other projections
-    it is exact for grid north and otherwise off by at most the projection's angular distortion.
+    azimuth from a cell centre to a point a short distance along the vector. On other projections
+    (projected grids with a CRS) the vector's frame is turned by the true azimuth of grid north,
+    which departs from gamma by up to the angular distortion: that offset
+    (:attr:`crustflow.geometry.projection.ProjectionFactors.north_offset`) is added too.
     """
     e = _checked_field(east, geom, "east")
     n = _checked_field(north, geom, "north")
     az = np.degrees(np.arctan2(e, n))
     if geom.kind == "projected":
         az = az + meridian_convergence(geom)
+        if geom.scaled:
+            offset = geom.centre_factors.north_offset
+            if np.any(offset != 0.0):
+                az = az + offset
     az = np.mod(az, FULL_TURN)
     az = np.where(az >= FULL_TURN, 0.0, az)  # np.mod(-tiny, 360) rounds to 360
     az = np.where((e == 0) & (n == 0), 0.0, az)
@@ -701,13 +852,34 @@ def _meridian_arc(phi1: np.ndarray, phi2: np.ndarray, ell: Ellipsoid) -> np.ndar
     return half * total
 
 
+def _face_mean(v: np.ndarray, axis: int) -> np.ndarray:
+    """The n + 1 face values of n cell values along ``axis``: neighbour means inside, linear
+    extrapolation at the ends; arrays of length 1 along ``axis`` (broadcast constants) pass."""
+    if v.shape[axis] == 1:
+        return v
+
+    def part(sl: slice) -> tuple:
+        return (sl, slice(None)) if axis == 0 else (slice(None), sl)
+
+    shape = list(v.shape)
+    shape[axis] += 1
+    out = np.empty(shape)
+    inner = out[part(slice(1, -1))]
+    np.add(v[part(slice(None, -1))], v[part(slice(1, None))], out=inner)
+    inner *= 0.5
+    out[part(slice(0, 1))] = 1.5 * v[part(slice(0, 1))] - 0.5 * v[part(slice(1, 2))]
+    out[part(slice(-1, None))] = 1.5 * v[part(slice(-1, None))] - 0.5 * v[part(slice(-2, -1))]
+    return out
+
+
+def _bounds(c: np.ndarray, step: float) -> np.ndarray:
+    """The n + 1 face coordinates of n cell centres: midpoints, and half a step beyond the ends."""
+    return np.concatenate(([c[0] - 0.5 * step], 0.5 * (c[:-1] + c[1:]), [c[-1] + 0.5 * step]))
+
+
 def _row_bounds(geom: GridGeometry) -> np.ndarray:
     """Latitudes (degrees) of the nrow + 1 parallels bounding the rows, clipped to the poles."""
-    y = geom.y
-    bounds = np.concatenate(
-        ([y[0] - 0.5 * geom.dy], 0.5 * (y[:-1] + y[1:]), [y[-1] + 0.5 * geom.dy])
-    )
-    return np.clip(bounds, -POLE_LATITUDE, POLE_LATITUDE)
+    return np.clip(_bounds(geom.y, geom.dy), -POLE_LATITUDE, POLE_LATITUDE)
 
 
 def _axis_derivative(

@@ -123,9 +123,10 @@ class FieldGrid:
     @property
     def typical_cell_m(self) -> float:
         """Smaller metric side of a cell on the middle row, m."""
-        east, north = cell_spacings(self.geometry)
-        mid = east.shape[0] // 2
-        return float(min(east.ravel()[mid], north.ravel()[mid]))
+        shape = self.geometry.shape
+        east, north = (np.broadcast_to(s, shape) for s in cell_spacings(self.geometry))
+        mid = (shape[0] // 2, shape[1] // 2)
+        return float(min(east[mid], north[mid]))
 
     def values(self, name: str) -> np.ndarray:
         """A variable as a float64 array indexed ``[row, col]``, NaN for nodata."""

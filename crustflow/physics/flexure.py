@@ -22,8 +22,9 @@ SI units. They share one procedure (:func:`wavenumber_filter`):
 
 Geographic grids are filtered in a *local equidistant frame*: constant spacings taken from the
 ellipsoid at the grid's central latitude (:func:`local_frame`, which also estimates the error of that
-approximation). Projected grids use their projected metres (the projection's scale error is not
-corrected, as everywhere in crustflow).
+approximation). Projected grids are filtered in projected coordinates with the ground spacings at the
+grid's centre (projected metres over the projection's scale factor there); the variation of the
+scale factor across the grid is the frame's error, estimated the same way.
 """
 
 from __future__ import annotations
@@ -40,6 +41,7 @@ from scipy import ndimage
 
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import GridGeometry, _radii
+from crustflow.geometry.projection import point_factors
 
 __all__ = [
     "YOUNGS_MODULUS",
@@ -76,6 +78,11 @@ POISSON_LIMIT = 0.5
 #: exponent ``k^2 sigma^2 / 2`` by up to ~10 %.
 LOCAL_FRAME_WARNING = 0.05
 
+#: Cells per axis (evenly spread, edges included) at which a projected grid's projection factors
+#: are sampled to estimate its local frame's error. Project choice: the scale factor varies
+#: smoothly on the scale of the Earth's radius, so 17 x 17 samples find its extremes closely.
+FRAME_SAMPLES = 17
+
 
 @dataclass(frozen=True)
 class LocalFrame:
@@ -89,11 +96,13 @@ class LocalFrame:
         Spacing between rows (north), m, positive.
     central_latitude : float or None
         Latitude at which the spacings of a geographic grid are taken, degrees; None for a
-        projected grid.
+        projected grid (its spacings are taken at the grid's centre).
     relative_error : float
         Largest relative departure, over the grid's rows, of the true local spacings (east
         ``N(phi) cos(phi) |dlambda|``, north ``M(phi) |dphi|``) from ``dx``, ``dy``; dimensionless.
-        0 for a projected grid (projected metres are used as they are).
+        Projected grids: the same over :data:`FRAME_SAMPLES` x :data:`FRAME_SAMPLES` cells, with
+        the ground lengths of a grid step from the projection factors; 0 without a CRS (projected
+        metres are used as they are).
     """
 
     dx: float
@@ -115,7 +124,12 @@ def local_frame(geometry: GridGeometry) -> LocalFrame:
 
     Notes
     -----
-    Projected grids: ``dx = |x step|``, ``dy = |y step|`` in projected metres.
+    Projected grids with a CRS: ``dx``, ``dy`` are the ground lengths of one grid step along x and
+    y at the grid's centre (:func:`crustflow.geometry.grid.ground_steps`: projected metres over the
+    scale factor of a conformal projection); without a CRS ``|x step|``, ``|y step|``. The filter
+    ignores the angle between the grid axes on the ground of a non-conformal projection (its
+    angular distortion) and the variation of the scale factor, which the relative error reports:
+    1.5 % on a 3000 km Lambert conformal conic grid with standard parallels 25 and 45 N.
 
     Geographic grids: at the central latitude ``phi0`` (midway between the first and last row
     centres) ``dx = N(phi0) cos(phi0) |dlambda|`` and ``dy = M(phi0) |dphi|``, with the radii of
@@ -133,7 +147,9 @@ def local_frame(geometry: GridGeometry) -> LocalFrame:
     (radii of curvature; chapter from memory).
     """
     if geometry.kind == "projected":
-        return LocalFrame(abs(geometry.dx), abs(geometry.dy), None, 0.0)
+        if not geometry.scaled:
+            return LocalFrame(abs(geometry.dx), abs(geometry.dy), None, 0.0)
+        return _projected_frame(geometry)
     phi = np.radians(geometry.y)
     phi0 = 0.5 * (phi[0] + phi[-1])
     n_rows, m_rows = _radii(phi, geometry.ellipsoid)
@@ -427,8 +443,30 @@ def wavenumber_filter(
 # helpers
 
 
+def _projected_frame(geometry: GridGeometry) -> LocalFrame:
+    """Local frame of a projected grid with a CRS: ground spacings at its centre (see local_frame)."""
+    crs = geometry.crs.sub_crs_list[0] if geometry.crs.is_compound else geometry.crs
+    nrow, ncol = geometry.shape
+    rows = np.unique(np.linspace(0, nrow - 1, FRAME_SAMPLES).round().astype(int))
+    cols = np.unique(np.linspace(0, ncol - 1, FRAME_SAMPLES).round().astype(int))
+    x, y = geometry.x, geometry.y
+    centre = point_factors(crs, 0.5 * (x[0] + x[-1]), 0.5 * (y[0] + y[-1]))
+    samples = point_factors(crs, x[cols][None, :], y[rows][:, None])
+
+    def steps(f):  # ground metres per projected metre along x and along y
+        return np.hypot(1.0, f.shear / f.north) / f.east, 1.0 / f.north
+
+    east0, north0 = (float(v) for v in steps(centre))
+    east, north = steps(samples)
+    error = max(
+        float(np.max(np.abs(east / east0 - 1.0))), float(np.max(np.abs(north / north0 - 1.0)))
+    )
+    return LocalFrame(abs(geometry.dx) * east0, abs(geometry.dy) * north0, None, error)
+
+
 def _report_frame(frame: LocalFrame) -> None:
     if frame.central_latitude is None:
+        _report_projected_frame(frame)
         return
     logger.debug(
         "local equidistant frame at %.4f degrees: dx %.6g m, dy %.6g m, largest relative spacing "
@@ -446,6 +484,27 @@ def _report_frame(frame: LocalFrame) -> None:
             "the grid to a local projected CRS or filter smaller pieces",
             UserWarning,
             stacklevel=3,
+        )
+
+
+def _report_projected_frame(frame: LocalFrame) -> None:
+    if frame.relative_error == 0.0:
+        return
+    logger.debug(
+        "local frame at the grid's centre: dx %.6g m, dy %.6g m on the ground, largest relative "
+        "spacing error %.3g",
+        frame.dx,
+        frame.dy,
+        frame.relative_error,
+    )
+    if frame.relative_error > LOCAL_FRAME_WARNING:
+        warnings.warn(
+            "filtering a projected grid in a local frame at its centre: the projection's scale "
+            f"changes by up to {100 * frame.relative_error:.1f} % across the grid, so wavenumbers "
+            "near its edges are off by as much; filter smaller pieces or use a projection with "
+            "less scale variation",
+            UserWarning,
+            stacklevel=4,
         )
 
 

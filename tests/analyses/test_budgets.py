@@ -17,6 +17,7 @@ import pytest
 import shapely
 import xarray as xr
 from conftest import airy
+from scipy import integrate
 
 import crustflow
 from crustflow import CrustflowInputError, ModelParameters
@@ -30,7 +31,7 @@ from crustflow.analyses.budgets import (
     section_profile,
     write_budget_outputs,
 )
-from crustflow.geometry.grid import cell_areas, grid_geometry
+from crustflow.geometry.grid import cell_areas, cell_spacings, grid_geometry
 
 UTM = "EPSG:32633"
 PARAMS = ModelParameters(channel_thickness=15e3, viscosity=1e19)
@@ -55,6 +56,36 @@ def uniform_fields(q_east, q_north, x, y, crs, *, nodata=None):
         coords={"y": y, "x": x},
     )
     return ds.rio.write_crs(crs)
+
+
+def ground(path, crs=UTM):
+    """Ground length of each straight projected segment of a path, m: the integral of ds / k with
+    k pyproj's point scale factor (``Proj.get_factors``; UTM is conformal), by scipy's
+    Gauss-Legendre quadrature."""
+    proj, to_lonlat = (
+        pyproj.Proj(crs),
+        pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True),
+    )
+    out = []
+    for (x0, y0), (x1, y1) in zip(path[:-1], path[1:], strict=True):
+
+        def inverse_k(t, x0=x0, y0=y0, x1=x1, y1=y1):
+            lon, lat = to_lonlat.transform(x0 + t * (x1 - x0), y0 + t * (y1 - y0))
+            return 1.0 / proj.get_factors(lon, lat).parallel_scale
+
+        mean, _ = integrate.fixed_quad(inverse_k, 0.0, 1.0, n=10)  # 1/k is smooth: exact
+        out.append(mean * np.hypot(x1 - x0, y1 - y0))
+    return np.array(out)
+
+
+def uniform_line_flux(q_east, q_north, path, crs=UTM):
+    """Volume flux of a uniform q (local frame, m2/yr) through a projected polyline, m3/yr: on a
+    conformal projection each segment keeps its direction in the local frame, so the flux is
+    ``(q_e dy - q_n dx) / L_projected`` times the ground length (value derived)."""
+    p = np.asarray(path, dtype=float)
+    d = np.diff(p, axis=0)
+    per_metre = (q_east * d[:, 1] - q_north * d[:, 0]) / np.hypot(d[:, 0], d[:, 1])
+    return float(np.sum(per_metre * ground(path, crs)))
 
 
 def utm_axes(n_x=40, n_y=30, cell=1e3):
@@ -124,23 +155,29 @@ def geographic_plateau():
 
 def test_uniform_flux_through_a_line_is_exact():
     # Analytic (value derived): for uniform q, integral of q.n ds with n the right-hand normal
-    # (t_n, -t_e) is q_e (y_end - y_start) - q_n (x_end - x_start), for any polyline.
+    # (t_n, -t_e) is q_e (y_end - y_start) - q_n (x_end - x_start) per projected metre, for any
+    # polyline; on the ground each segment's share is scaled by the mean of 1/k along it (pyproj
+    # point scale factor, integrated by scipy: uniform_line_flux).
     x, y = utm_axes()
     ds = uniform_fields(3.0, -2.0, x, y, UTM)
     path = [(503e3, 4975e3), (512e3, 4990e3), (531.5e3, 4981e3)]
     out = section_budgets(ds, lines(path, path[::-1], names=["forward", "reverse"]))
-    want = 3.0 * (4981e3 - 4975e3) - (-2.0) * (531.5e3 - 503e3)  # m3/yr
+    want = uniform_line_flux(3.0, -2.0, path)  # m3/yr
+    assert want == pytest.approx(3.0 * (4981e3 - 4975e3) - (-2.0) * (531.5e3 - 503e3), rel=5e-4)
     fwd, rev = out.set_index("name").loc[["forward", "reverse"]].itertuples()
-    assert fwd.volume_flux_m3_per_yr == pytest.approx(want, rel=1e-12)
-    assert rev.volume_flux_m3_per_yr == pytest.approx(-want, rel=1e-12)  # reversing flips the sign
+    # Midpoint rule on the sample pieces h: 1/k is off by about (h / R)^2 / 24 (value derived).
+    assert fwd.volume_flux_m3_per_yr == pytest.approx(want, rel=1e-9)
+    assert rev.volume_flux_m3_per_yr == pytest.approx(-want, rel=1e-9)  # reversing flips the sign
     assert fwd.volume_flux_km3_per_Myr == pytest.approx(
-        want / 1e3, rel=1e-12
+        fwd.volume_flux_m3_per_yr / 1e3, rel=1e-12
     )  # 1 km3/Myr = 1e3 m3/yr
-    seg = np.hypot(9e3, 15e3) + np.hypot(19.5e3, 9e3)
-    assert fwd.length_km == pytest.approx(seg / 1e3, rel=1e-12)
+    seg = ground(path).sum()
+    assert fwd.length_km == pytest.approx(seg / 1e3, rel=1e-9)
     assert fwd.covered_fraction == 1.0
     assert fwd.positive_m3_per_yr - fwd.negative_m3_per_yr >= abs(want)
-    assert fwd.positive_m3_per_yr + fwd.negative_m3_per_yr == pytest.approx(want, rel=1e-12)
+    assert fwd.positive_m3_per_yr + fwd.negative_m3_per_yr == pytest.approx(
+        fwd.volume_flux_m3_per_yr, rel=1e-12
+    )
     assert out.attrs["positive_side"].startswith("positive volume flux crosses a section towards")
 
 
@@ -151,7 +188,12 @@ def test_right_hand_side_is_positive():
     out = section_budgets(
         ds, lines([(510e3, 4980e3), (510e3, 4990e3)], [(505e3, 4985e3), (515e3, 4985e3)])
     )
-    np.testing.assert_allclose(out.volume_flux_m3_per_yr, [5.0 * 10e3, -7.0 * 10e3], rtol=1e-12)
+    want = [
+        uniform_line_flux(5.0, 7.0, [(510e3, 4980e3), (510e3, 4990e3)]),
+        uniform_line_flux(5.0, 7.0, [(505e3, 4985e3), (515e3, 4985e3)]),
+    ]
+    assert want[0] > 0 > want[1]
+    np.testing.assert_allclose(out.volume_flux_m3_per_yr, want, rtol=1e-9)
 
 
 def test_geographic_line_length_and_flux_match_pyproj_geod():
@@ -192,7 +234,10 @@ def test_section_total_converges_with_spacing(kind, projected_plateau, geographi
     feats = lines([at(-80e3, 10e3), at(20e3, -5e3), at(85e3, 40e3)], crs=ds.rio.crs)
     base = section_budgets(ds, feats)
     step = base.sample_spacing_m[0]
-    assert 0 < step <= 1.25e3 + 1e-9  # default: half the smallest cell side (2.5 km here)
+    # Default: half the smallest cell side on the ground (2.5 km here on the projected grid).
+    sides = cell_spacings(grid_geometry(ds.x.values, ds.y.values, ds.rio.crs))
+    assert step == pytest.approx(0.5 * min(float(np.min(v)) for v in sides), rel=1e-12)
+    assert 0 < step <= 1.25e3 * 1.001
     half = section_budgets(ds, feats, spacing=step / 2)
     total, finer = base.volume_flux_m3_per_yr[0], half.volume_flux_m3_per_yr[0]
     assert abs(finer - total) < 1e-3 * abs(total)
@@ -201,14 +246,19 @@ def test_section_total_converges_with_spacing(kind, projected_plateau, geographi
 def test_covered_fraction_half_outside_and_across_nodata():
     # Value derived: samples every 0.5 km; half of the first line lies east of the grid (x > 540 km),
     # 5 km of the second line's 20 km cross nodata cells (columns 10-14, x from 510 to 515 km).
+    # Fractions of ground length: the scale factor varies by < 1e-5 along these lines.
     x, y = utm_axes()
     ds = uniform_fields(0.0, 6.0, x, y, UTM, nodata=(slice(None), slice(10, 15)))
     out = section_budgets(
         ds, lines([(530e3, 4985e3), (550e3, 4985e3)], [(505e3, 4985e3), (525e3, 4985e3)])
     )
-    np.testing.assert_allclose(out.covered_fraction, [0.5, 0.75], rtol=1e-12)
-    # Walking east the positive side is south: Q = -q_n x covered length.
-    np.testing.assert_allclose(out.volume_flux_m3_per_yr, [-6.0 * 10e3, -6.0 * 15e3], rtol=1e-12)
+    np.testing.assert_allclose(out.covered_fraction, [0.5, 0.75], rtol=1e-5)
+    # Walking east the positive side is south: Q = -q_n x covered ground length.
+    covered = [
+        ground([(530e3, 4985e3), (540e3, 4985e3)])[0],
+        ground([(505e3, 4985e3), (510e3, 4985e3), (515e3, 4985e3), (525e3, 4985e3)])[[0, 2]].sum(),
+    ]
+    np.testing.assert_allclose(out.volume_flux_m3_per_yr, -6.0 * np.array(covered), rtol=1e-9)
     profile = section_profile(ds, out.geometry[1])
     assert profile["normal_flux_m2_per_yr"].isna().sum() == 10  # 5 km of 0.5 km pieces
     assert list(profile.columns) == [
@@ -219,8 +269,11 @@ def test_covered_fraction_half_outside_and_across_nodata():
         "flux_north_m2_per_yr",
         "normal_flux_m2_per_yr",
     ]
-    assert profile.distance_km.iloc[-1] == pytest.approx(19.75)
-    assert profile.attrs["volume_flux_m3_per_yr"] == pytest.approx(-6.0 * 15e3)
+    # Last sample: the middle of the last 0.5 km piece, on the ground (the line's ground length
+    # less half a piece).
+    whole = ground([(505e3, 4985e3), (525e3, 4985e3)])[0]
+    assert profile.distance_km.iloc[-1] == pytest.approx((whole - 0.25e3 * whole / 20e3) / 1e3)
+    assert profile.attrs["volume_flux_m3_per_yr"] == pytest.approx(-6.0 * covered[1])
 
 
 def test_fields_read_back_from_netcdf_give_the_same_budget(tmp_path, projected_plateau):
@@ -287,16 +340,25 @@ def test_gauss_theorem_on_the_plateau(kind, projected_plateau, geographic_platea
 
 
 def test_region_area_and_cover_half_outside():
-    # Value derived: a 20 x 10 km box, half east of the grid edge (x = 540 km): area 200 km2, cover 0.5.
+    # Value derived: a 20 x 10 km box, half east of the grid edge (x = 540 km): area 200 km2 in
+    # projected metres, cover 0.5. On the ground (UTM scale factor 0.9996 to 1.00003 x 0.9996 here):
+    # the area is the geodesic area of the densified box (pyproj.Geod), about 200 / 0.9996^2 km2.
     x, y = utm_axes()
     ds = uniform_fields(2.0, 0.0, x, y, UTM)
     box = shapely.box(530e3, 4975e3, 550e3, 4985e3)
     out = region_budgets(ds, gpd.GeoDataFrame({"name": ["b"]}, geometry=[box], crs=UTM))
-    assert out.area_km2[0] == pytest.approx(200.0)
-    assert out.covered_fraction[0] == pytest.approx(0.5)
-    assert out.length_km[0] == pytest.approx(60.0)
-    # Uniform q, zero thickening: the covered west side takes in 2 m2/yr x 10 km.
-    assert out.boundary_outflow_m3_per_yr[0] == pytest.approx(-2.0 * 10e3)
+    to_lonlat = pyproj.Transformer.from_crs(UTM, "EPSG:4326", always_xy=True)
+    dense = shapely.segmentize(box, 100.0)
+    lon, lat = to_lonlat.transform(*np.asarray(dense.exterior.coords).T)
+    area = abs(WGS84_GEOD.polygon_area_perimeter(lon, lat)[0])
+    assert out.area_km2[0] == pytest.approx(area / 1e6, rel=1e-9)
+    assert out.area_km2[0] == pytest.approx(200.0 / 0.9996**2, rel=1e-4)
+    assert out.covered_fraction[0] == pytest.approx(0.5, rel=1e-5)
+    corners = [(530e3, 4975e3), (550e3, 4975e3), (550e3, 4985e3), (530e3, 4985e3), (530e3, 4975e3)]
+    assert out.length_km[0] == pytest.approx(ground(corners).sum() / 1e3, rel=1e-9)
+    # Uniform q, zero thickening: the covered west side takes in 2 m2/yr x 10 km (on the ground).
+    west = ground([(530e3, 4975e3), (530e3, 4985e3)])[0]
+    assert out.boundary_outflow_m3_per_yr[0] == pytest.approx(-2.0 * west, rel=1e-9)
 
 
 def test_geographic_region_area_matches_pyproj_geod():
@@ -390,7 +452,8 @@ def test_outputs_read_back(tmp_path, projected_plateau):
     meta = pyogrio.read_info(folder / "flux_arrows.gpkg", layer="arrows")["layer_metadata"]
     assert float(meta["metres_per_m2_per_yr"]) == scale
     # Arrow length = scale x |q| (definition); mean speed = |q| / h (README, Model), mm/yr.
-    np.testing.assert_allclose(arrows.length, scale * arrows.flux_magnitude, rtol=1e-9)
+    # (atol: arrow ends are coordinates near 5e6 m, whose difference carries ~1e-9 m of rounding.)
+    np.testing.assert_allclose(arrows.length, scale * arrows.flux_magnitude, rtol=1e-9, atol=1e-8)
     np.testing.assert_allclose(samples.mean_speed, samples.flux_magnitude / 15e3 * 1e3, rtol=1e-6)
 
 

@@ -157,8 +157,14 @@ def test_gradient_projected_plateau():
     py, dpy = plateau(y, 200e3, 600e3, 50e3)
     f = height * py[:, None] * px[None, :]
     ge, gn = gradient(f, geom)
-    want_e = height * py[:, None] * dpx[None, :]
-    want_n = height * dpy[:, None] * px[None, :]
+    # Per ground metre: the derivative per projected metre times the point scale factor k of the
+    # (conformal) UTM projection, from pyproj Proj.get_factors (up to 1.0027 at this grid's edges).
+    lon, lat = pyproj.Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True).transform(
+        *np.meshgrid(x, y)
+    )
+    k = pyproj.Proj("EPSG:32633").get_factors(lon, lat).parallel_scale
+    want_e = k * height * py[:, None] * dpx[None, :]
+    want_n = k * height * dpy[:, None] * px[None, :]
     peak = max(np.abs(want_e).max(), np.abs(want_n).max())
     assert np.abs(ge - want_e)[1:-1, 1:-1].max() < 2e-3 * peak
     assert np.abs(gn - want_n)[1:-1, 1:-1].max() < 2e-3 * peak

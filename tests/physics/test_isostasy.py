@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from crustflow.geometry.grid import grid_geometry
+from crustflow.geometry.grid import GridGeometry
 from crustflow.physics import isostasy as load
 
 G = 9.81
@@ -15,7 +15,9 @@ RHO_C, RHO_M, RHO_W = 2800.0, 3300.0, 1030.0
 def projected(nx=41, ny=31, cell=5e3):
     x = 500e3 + cell * np.arange(nx)
     y = 5000e3 - cell * np.arange(ny)
-    return grid_geometry(x, y, "EPSG:32633"), *np.meshgrid(x, y)
+    # No CRS: projected metres are ground metres (the load physics is under test here, not the
+    # projection's scale factor, which tests/geometry/test_projection_factors.py covers).
+    return GridGeometry(kind="projected", x=x, y=y), *np.meshgrid(x, y)
 
 
 def test_airy_root_ratio():
