@@ -19,13 +19,11 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import re
 from pathlib import Path
 
 import geopandas as gpd
 import numpy as np
 import pandas as pd
-import pyogrio
 import pyproj
 import shapely
 import xarray as xr
@@ -42,7 +40,9 @@ from crustflow.io.features import (
     field_grid,
     geodesic_densify,
     read_features,
+    safe_name,
     walk,
+    write_layer,
 )
 from crustflow.io.styles import arrow_style, region_style, section_style, write_layer_styles
 
@@ -577,16 +577,6 @@ def _table(frames) -> pd.DataFrame:
     return table
 
 
-def safe_name(name: str, taken: set[str]) -> str:
-    """A file-name-safe, unique form of a feature name (letters, digits, ``.``, ``_``, ``-``)."""
-    base = re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("._") or "feature"
-    candidate, k = base, 2
-    while candidate.lower() in taken:
-        candidate, k = f"{base}_{k}", k + 1
-    taken.add(candidate.lower())
-    return candidate
-
-
 def write_budget_outputs(
     fields: xr.Dataset,
     folder,
@@ -651,7 +641,7 @@ def write_budget_outputs(
         target = folder / "budgets.gpkg"
         target.unlink(missing_ok=True)
         for layer, frame in frames.items():
-            _write_layer(frame, target, layer, {"DESCRIPTION": POSITIVE_SIDE}, {})
+            write_layer(frame, target, layer, {"DESCRIPTION": POSITIVE_SIDE}, {})
         write_layer_styles(target, [section_style(), region_style()])
         written.append(target.name)
     arrows, samples = arrow_layers(fields)
@@ -662,8 +652,8 @@ def write_budget_outputs(
     target = folder / "flux_arrows.gpkg"
     target.unlink(missing_ok=True)
     meta = {"metres_per_m2_per_yr": repr(float(scale))}
-    _write_layer(arrows, target, "arrows", {"DESCRIPTION": note}, meta, "LineString")
-    _write_layer(samples, target, "samples", {"DESCRIPTION": note.split("; ")[1]}, {}, "Point")
+    write_layer(arrows, target, "arrows", {"DESCRIPTION": note}, meta, "LineString")
+    write_layer(samples, target, "samples", {"DESCRIPTION": note.split("; ")[1]}, {}, "Point")
     write_layer_styles(target, [arrow_style()])
     written.append(target.name)
     title = title or str(fields.attrs.get("title", ""))
@@ -685,16 +675,3 @@ def write_budget_outputs(
     )
     written += [f"budget_map.{fmt}" for fmt in options["formats"]]
     return written
-
-
-def _write_layer(frame, path: Path, layer: str, options: dict, metadata: dict, kind=None) -> None:
-    """Add one layer to a GeoPackage, with a description (layer option) and metadata."""
-    pyogrio.write_dataframe(
-        frame,
-        path,
-        layer=layer,
-        driver="GPKG",
-        geometry_type=kind,
-        layer_options=options,
-        layer_metadata=metadata or None,
-    )

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -45,6 +46,8 @@ __all__ = [
     "field_grid",
     "read_features",
     "read_points",
+    "safe_name",
+    "write_layer",
     "checked_features",
     "geodesic_densify",
     "PathPoints",
@@ -679,3 +682,26 @@ def read_points(path, grid_crs=None) -> list[tuple[str, float, float, object]]:
         raise CrustflowInputError(f"points file {path} must hold Point features only")
     names = frame["name"].astype(str) if "name" in frame else frame.index.astype(str)
     return [(n, g.x, g.y, frame.crs) for n, g in zip(names, frame.geometry, strict=True)]
+
+
+def safe_name(name: str, taken: set[str]) -> str:
+    """A file-name-safe, unique form of a feature name (letters, digits, ``.``, ``_``, ``-``)."""
+    base = re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("._") or "feature"
+    candidate, k = base, 2
+    while candidate.lower() in taken:
+        candidate, k = f"{base}_{k}", k + 1
+    taken.add(candidate.lower())
+    return candidate
+
+
+def write_layer(frame, path: Path, layer: str, options: dict, metadata: dict, kind=None) -> None:
+    """Add one layer to a GeoPackage, with a description (layer option) and metadata."""
+    pyogrio.write_dataframe(
+        frame,
+        path,
+        layer=layer,
+        driver="GPKG",
+        geometry_type=kind,
+        layer_options=options,
+        layer_metadata=metadata or None,
+    )

@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from crustflow.analyses.budgets import POSITIVE_SIDE, safe_name
+from crustflow.analyses.budgets import POSITIVE_SIDE
 from crustflow.analyses.ensemble.stats import Reducer, sorted_percentiles
 from crustflow.figures.common import save_figure
 from crustflow.figures.ensemble import (
@@ -41,6 +41,7 @@ from crustflow.figures.ensemble import (
     draw_exceedance_map,
     ensemble_map,
 )
+from crustflow.io.features import safe_name
 from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
 from crustflow.scenario.ensemble_spec import PERCENTILE_METHOD
 from crustflow.variables import CAUTION, VARIABLES, to_practical
