@@ -16,6 +16,7 @@ from typing import Any
 from crustflow.errors import CrustflowInputError
 from crustflow.scenario.channel import ChannelSetup, parse_channel
 from crustflow.scenario.ensemble import parse_ensemble
+from crustflow.scenario.evolution import EvolutionSpec, parse_evolution
 from crustflow.scenario.load import LoadSetup, parse_load
 from crustflow.scenario.parameters import ModelParameters
 from crustflow.units import parse_quantity, parse_vector
@@ -61,6 +62,7 @@ _SCHEMA: dict[str, Any] = {
     "budgets": {"sections": "path", "regions": "path"},
     "roof": {"layers": "list"},  # checked by crustflow.scenario.load
     "ensemble": "table",  # checked by crustflow.analyses.ensemble.run.parse_ensemble
+    "evolution": "table",  # checked by crustflow.scenario.evolution
     "load": {
         "smoothing": "length",
         "elastic_thickness": "length",
@@ -110,6 +112,7 @@ class Scenario:
     ensemble: object | None = (
         None  #: crustflow.analyses.ensemble.run.EnsembleSpec when [ensemble] is given
     )
+    evolution: EvolutionSpec | None = None  #: the [evolution] table, when given
 
     def resolved(self) -> dict:
         """The scenario resolved to SI units, as a JSON-ready dict."""
@@ -219,6 +222,7 @@ def scenario_from_dict(
         **_parse_output(raw.get("output", {})),
         **_parse_budgets(raw.get("budgets", {}), base),
         ensemble=_parse_ensemble_table(raw, params),
+        evolution=parse_evolution(raw.get("evolution")),
         source=source,
         written=raw,
     )
