@@ -31,6 +31,7 @@ _LAZY = {
     "velocity_profiles": "crustflow.analyses.profiles",
     "channel_flow": "crustflow.physics.channel",
     "velocity_profile": "crustflow.physics.channel",
+    "evolve": "crustflow.analyses.evolution.evolve",
 }
 
 #: Module paths documented before the package was layered -> where they live now. ``import

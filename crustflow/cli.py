@@ -475,6 +475,53 @@ def _ensemble(scenario_path: Path, out: Path, quiet: bool) -> int:
     return 0
 
 
+def _evolve(scenario_path: Path, out: Path, quiet: bool) -> int:
+    """``crustflow evolve``: the scenario's [evolution] run into an atomic folder, then a summary."""
+    from crustflow.analyses.evolution.run import run_evolution
+    from crustflow.io.writers import atomic_folder, base_manifest, write_manifest
+    from crustflow.scenario.document import load_scenario
+
+    scenario = load_scenario(scenario_path)
+    if scenario.evolution is None:
+        raise CrustflowInputError(
+            'the scenario has no [evolution] table; add one, e.g. [evolution] duration = "2 Myr" '
+            'and save_every = "0.5 Myr" (see the README, "Through time")'
+        )
+    began, bar = time.perf_counter(), None
+    if not quiet and sys.stderr.isatty() and scenario.evolution.mode == "transient":
+        from tqdm import tqdm
+
+        total = scenario.evolution.duration / 3.15576e13  # s -> Myr (Julian years)
+        bar = tqdm(total=total, unit="Myr", desc="model time", file=sys.stderr)
+
+    def progress(t: float, _total: float) -> None:
+        bar.update(t / 3.15576e13 - bar.n)
+
+    try:
+        with atomic_folder(out, scenario.input_paths) as tmp:
+            result = run_evolution(scenario, tmp, progress if bar is not None else None)
+            manifest = base_manifest(scenario, {"evolution": time.perf_counter() - began})
+            manifest["crustflow_run"] = "evolution through time"
+            manifest["evolution"] = result["manifest"]
+            write_manifest(tmp, manifest, result["written"])
+    finally:
+        if bar is not None:
+            bar.close()
+    if not quiet:
+        s, b = result["summary"]["stepping"], result["summary"]["volume_balance"]
+        print(f"crustflow evolve: {scenario.title} ({scenario.evolution.mode})")
+        print(f"  steps taken      {s['steps']} ({s['rejected_steps']} repeated with a shorter step)")
+        print(
+            f"  volume balance   change {b['volume_change_km3']:.6g} km3 = edge inflow "
+            f"{b['edge_inflow_km3']:.6g} + fixed edges {b['fixed_edge_exchange_km3']:.6g} "
+            f"(mismatch {b['imbalance_relative']:.1e} of the volume)"
+        )
+        print(f"  largest elevation change {result['summary']['largest_elevation_change_m']:.4g} m")
+        print(f"  wrote {out.expanduser().resolve()} in {time.perf_counter() - began:.1f} s")
+        print("  caution: research estimate of a simplified model; not for hazard decisions")
+    return 0
+
+
 def _demo(out: Path, quiet: bool, scenario_name: str) -> int:
     from crustflow.samples.plateau import demo_scenario
 
@@ -630,6 +677,23 @@ def build_parser() -> argparse.ArgumentParser:
         help="output folder (default: ./crustflow_ensemble)",
     )
     ensemble.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    evolve = sub.add_parser(
+        "evolve",
+        help="step topography and crust through time under channel flow, or find the steady state",
+        description="Step the crust through time as the scenario's [evolution] table says "
+        "(implicit, volume-conserving; elevation by Airy isostasy) and write evolution.nc or "
+        "steady.nc, GeoTIFFs with a band per snapshot, elevation profiles and an animation. "
+        "Assumes fixed channel thickness and viscosity in space and no erosion.\n\n" + CAUTION_HELP,
+        **common,
+    )
+    evolve.add_argument("scenario", type=Path, help="scenario file (TOML) with [evolution]")
+    evolve.add_argument(
+        "--out",
+        type=Path,
+        default=Path("crustflow_evolution"),
+        help="output folder (default: ./crustflow_evolution)",
+    )
+    evolve.add_argument("--quiet", action="store_true", help="print nothing but errors")
     check = sub.add_parser(
         "check",
         help="validate a scenario and its grids without writing anything",
@@ -686,6 +750,8 @@ def _main(argv: list[str] | None) -> int:
             return _ensemble(args.scenario, args.out, args.quiet)
         if args.command == "check":
             return _check(args.scenario)
+        if args.command == "evolve":
+            return _evolve(args.scenario, args.out, args.quiet)
     except CrustflowInputError as exc:
         print(f"crustflow: error: {exc}", file=sys.stderr)
         return 2
