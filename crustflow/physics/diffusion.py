@@ -50,8 +50,12 @@ log = logging.getLogger(__name__)
 #: Largest system solved directly (sparse LU); above it, AMG-preconditioned CG. Project choice.
 DIRECT_LIMIT = 40_000
 
-#: Relative residual of the conjugate-gradient solves, dimensionless (project choice).
+#: Relative residual of the conjugate-gradient solves, dimensionless (project choice); they also
+#: stop at an absolute residual worth NEWTON_FRACTION of the step tolerance in every cell.
 KRYLOV_RTOL = 1e-10
+
+#: Sparse LU factorizations kept for reuse on small grids (project choice).
+FACTOR_CACHE = 8
 
 #: Most CG iterations per solve before the multigrid hierarchy is rebuilt (project choice).
 KRYLOV_MAXITER = 300
@@ -77,10 +81,18 @@ BDF2_ERROR_WEIGHT = 8.0 / 23.0
 #: Most pseudo-time steps towards a steady state (project choice).
 STEADY_MAXITER = 80
 
-#: Pseudo-time step beyond which a step that changes nothing is the steady state, s: 1e20 s
-#: (3e12 yr) exceeds the relaxation time L^2 / kappa of any grid up to 1e4 km with kappa above
-#: 1e-6 m^2/s (eta below ~1e23 Pa s at h 15 km; value derived). Project choice.
-STEADY_STEP = 1e20
+#: Shortest pseudo-time step at which a step that changes almost nothing counts as the steady
+#: state, s: 1e16 s (317 Myr) is at least a tenth of the relaxation time L^2 / kappa of grids up to
+#: 1000 km with kappa above 1e-5 m^2/s (eta below ~1e20 Pa s at h 15 km; value derived).
+STEADY_MIN_STEP = 1e16
+
+#: Longest pseudo-time step, s (project choice: beyond ~1e20 s the rounding of h * dT/dt
+#: exceeds a micrometre of thickness).
+STEADY_MAX_STEP = 1e19
+
+#: A step of at least STEADY_MIN_STEP that changes T by less than this fraction of the tolerance
+#: ends the iteration (project choice).
+STEADY_FRACTION = 1e-2
 
 #: Growth of the pseudo-time step per steady iteration (project choice).
 STEADY_GROWTH = 10.0
@@ -199,22 +211,45 @@ def _newton_weights(problem: ChannelTransport, phi: np.ndarray) -> np.ndarray:
 
 
 class _LinearSolver:
-    """Solves the SPD systems of the Newton iterations; keeps an AMG hierarchy between solves."""
+    """Solves the SPD systems of the Newton iterations, reusing what it can between solves.
+
+    Small systems: sparse LU factorizations, cached by the matrix's key (the step over ``a0``; the
+    steps are powers of two of the snapshot interval, so few keys recur) while the conductances
+    stay the same. Large systems: conjugate gradients preconditioned by a smoothed-aggregation
+    multigrid hierarchy, rebuilt only when the key moves by more than a factor of 3.
+    """
 
     def __init__(self, stats: StepStats) -> None:
         self.stats, self.hierarchy, self.key = stats, None, None
+        self.factors: dict = {}
+        self.base_matrix = None
 
-    def solve(self, matrix: sp.csr_matrix, rhs: np.ndarray, key: float) -> np.ndarray:
+    def conductance(self, problem: ChannelTransport, phi: np.ndarray) -> sp.csr_matrix:
+        """``S`` of the Newton weights; computed once for a linear (n = 1) law."""
+        if problem.exponent == 1.0 and self.base_matrix is not None:
+            return self.base_matrix
+        matrix = conductance_matrix(_newton_weights(problem, phi), problem.network, problem.free)
+        if problem.exponent == 1.0:
+            self.base_matrix = matrix
+        return matrix
+
+    def solve(self, matrix, rhs, key: float, atol: float, *, reuse: bool) -> np.ndarray:
         if rhs.size <= DIRECT_LIMIT:
-            return spla.spsolve(matrix.tocsc(), rhs)
+            if not reuse:
+                return spla.spsolve(matrix.tocsc(), rhs)
+            if key not in self.factors:
+                if len(self.factors) >= FACTOR_CACHE:
+                    self.factors.pop(next(iter(self.factors)))
+                self.factors[key] = spla.splu(matrix.tocsc())
+            return self.factors[key].solve(rhs)
         if self.hierarchy is None or not (1 / 3 < key / self.key < 3):
             self._setup(matrix, key)
-        x, iterations = self._cg(matrix, rhs)
+        x, iterations = self._cg(matrix, rhs, atol)
         if x is None:  # the kept hierarchy no longer fits the matrix: rebuild once
             self._setup(matrix, key)
-            x, iterations = self._cg(matrix, rhs)
+            x, iterations = self._cg(matrix, rhs, atol)
             if x is None:
-                log.warning("conjugate gradients did not reach rtol %g", KRYLOV_RTOL)
+                log.warning("conjugate gradients did not reach the tolerance")
                 x = self.last
         self.stats.krylov_iterations += iterations
         return x
@@ -226,7 +261,7 @@ class _LinearSolver:
         self.key = key
         self.stats.multigrid_setups += 1
 
-    def _cg(self, matrix, rhs):
+    def _cg(self, matrix, rhs, atol):
         count = [0]
 
         def tick(_):
@@ -236,7 +271,7 @@ class _LinearSolver:
             matrix,
             rhs,
             rtol=KRYLOV_RTOL,
-            atol=0.0,
+            atol=atol,
             maxiter=KRYLOV_MAXITER,
             M=self.hierarchy.aspreconditioner(cycle="V"),
             callback=tick,
@@ -245,9 +280,10 @@ class _LinearSolver:
         return (x if info == 0 else None), count[0]
 
 
-def _implicit_solve(problem, history, h, coefficients, tol, solver, stats) -> np.ndarray | None:
+def _implicit_solve(problem, history, h, coefficients, tol, solver, stats, start=None):
     """One implicit step: Newton's method on ``a0 T - b = h dT/dt(T)`` over the free cells.
 
+    ``start``: first Newton iterate (e.g. the explicit predictor; default the current state).
     Returns the new thickness (whole grid, flat) or None if Newton did not converge.
     """
     a0, a1, a2 = coefficients
@@ -255,16 +291,19 @@ def _implicit_solve(problem, history, h, coefficients, tol, solver, stats) -> np
     free, area = problem.free, problem.network.area[problem.free]
     base = a1 * current[free] - (a2 * previous[free] if a2 else 0.0)
     state = current.copy()
+    if start is not None:
+        state[free] = start[free]
+    # CG also stops when every cell's thickness is within NEWTON_FRACTION * tol (residual in m^3).
+    atol = NEWTON_FRACTION * tol * a0 * float(np.min(area)) if free.size else 0.0
     for iteration in range(NEWTON_MAXITER):
         phi, slope = problem.potential(state)
         residual = a0 * state[free] - base - h * thickening_rate(problem, phi)[free]
         if iteration and problem.exponent == 1.0:
             if np.max(np.abs(residual)) / a0 < NEWTON_FRACTION * tol:
-                return state  # linear law: one exact solve was enough
-        weights = _newton_weights(problem, phi)
-        matrix = conductance_matrix(h * weights, problem.network, free)
-        matrix = matrix + sp.diags(a0 * area / slope[free])
-        y = solver.solve(matrix.tocsr(), -area * residual, h / a0)
+                return state  # linear law: one solve was enough
+        matrix = h * solver.conductance(problem, phi) + sp.diags(a0 * area / slope[free])
+        reuse = problem.exponent == 1.0 and iteration == 0
+        y = solver.solve(matrix.tocsr(), -area * residual, h / a0, atol, reuse=reuse)
         update = y / slope[free]
         state[free] += update
         stats.newton_iterations += 1
@@ -326,7 +365,7 @@ def integrate(
         Longest step, s.
     step : float, optional
         A fixed step, s, without error control (for convergence studies); steps are cut to land
-        on the snapshot times.
+        on the snapshot times. Otherwise steps are the snapshot interval divided by powers of two.
     snapshot : callable, optional
     on_step : callable, optional
         Called with the model time (s) after every accepted step (progress display).
@@ -345,62 +384,94 @@ def integrate(
     ``0.9 (tol / err)^(1/3)``, at most doubled (Hairer, Norsett & Wanner 1993, Solving Ordinary
     Differential Equations I, section II.4, for the controller).
     """
-    stats = StepStats()
-    solver = _LinearSolver(stats)
+    run = _Stepper(problem, thickness, tolerance, fixed=step is not None)
     times = [float(t) for t in times]
-    current = np.array(thickness, dtype=float).ravel()
+    unit = (times[1] - times[0]) if len(times) > 1 else 1.0
+    cap = unit if max_step is None else _quantized(max_step, unit)
     if snapshot is not None:
-        snapshot(0.0, current.copy())
-    phi, _ = problem.potential(current)
-    rate = thickening_rate(problem, phi)
-    h = step or _first_step(problem, rate, tolerance, max_step or times[-1] or 1.0)
-    previous, prev_rate, h_prev, t = None, None, None, 0.0
-    exchange = (0.0, 0.0)
+        snapshot(0.0, run.current.copy())
+    h = step or _quantized(_first_step(problem, run.rate, tolerance, cap), unit)
+    t = 0.0
     for target in times[1:]:
-        while t < target * (1 - 1e-12):
-            h = min(h, max_step or h, target - t)
-            if t + h < target and t + 2 * h > target:  # avoid a sliver before the snapshot
-                h = 0.5 * (target - t)
-            if h_prev is not None and step is None:
-                h = min(h, MAX_STEP_RATIO * h_prev)
-            coeffs = bdf2_coefficients(None if previous is None else h / h_prev)
-            hist = (current, previous if previous is not None else current)
-            new = _implicit_solve(problem, hist, h, coeffs, tolerance, solver, stats)
-            if new is None:
-                stats.rejected += 1
-                h *= 0.25
+        while target - t > 1e-9 * unit:
+            h_try = min(h, target - t)
+            if step is None and run.h_prev is not None:
+                h_try = min(h_try, MAX_STEP_RATIO * run.h_prev)
+            err, order = run.attempt(h_try)
+            if step is None and not err <= tolerance:  # too large an error, or Newton failed
+                run.stats.rejected += 1
+                shrink = 0.25 if not np.isfinite(err) else SAFETY * (tolerance / err) ** (1 / order)
+                h = min(_quantized(h_try * max(0.2, shrink), unit), 0.5 * h_try)
                 continue
-            gained = _conserve(problem, new, hist, h, coeffs, exchange)
-            a0, a1, a2 = coeffs
-            new_rate = np.zeros_like(rate)
-            base = a1 * current - (a2 * hist[1] if a2 else 0.0)
-            new_rate[problem.free] = (a0 * new[problem.free] - base[problem.free]) / h
-            if previous is None:
-                err, order = 0.5 * h * np.max(np.abs(new_rate - rate)[problem.free]), 2.0
-            else:
-                pred = current + h * rate + h * h / (2 * h_prev) * (rate - prev_rate)
-                err, order = BDF2_ERROR_WEIGHT * np.max(np.abs(new - pred)[problem.free]), 3.0
-            if step is None and err > tolerance:
-                stats.rejected += 1
-                h *= max(0.2, SAFETY * (tolerance / err) ** (1 / order))
-                continue
-            exchange = (gained, exchange[0])
-            stats.fixed_exchange = gained
-            previous, current, prev_rate, rate, h_prev = current, new, rate, new_rate, h
-            t += h
-            stats.steps += 1
-            stats.step_sizes.append(h)
+            run.accept(h_try)
+            t += h_try
             if on_step is not None:
                 on_step(t)
             if step is None:
                 grow = MAX_STEP_RATIO if err == 0 else SAFETY * (tolerance / err) ** (1 / order)
-                h = h * min(MAX_STEP_RATIO, max(0.5, grow))
-            else:
-                h = step
+                h = min(cap, _quantized(h_try * min(MAX_STEP_RATIO, max(0.5, grow)), unit))
         t = target
         if snapshot is not None:
-            snapshot(target, current.copy())
-    return stats
+            snapshot(target, run.current.copy())
+    return run.stats
+
+
+def _quantized(h: float, unit: float) -> float:
+    """The largest ``unit / 2^j`` (j >= 0) not above h: steps that land on the snapshot times and
+    recur, so factorizations and multigrid hierarchies can be reused."""
+    if h >= unit:
+        return unit
+    return unit * 2.0 ** math.floor(math.log2(h / unit))
+
+
+class _Stepper:
+    """The history of an integration and one attempted step at a time."""
+
+    def __init__(self, problem: ChannelTransport, thickness, tolerance: float, *, fixed: bool):
+        self.problem, self.tolerance, self.fixed = problem, tolerance, fixed
+        self.stats = StepStats()
+        self.solver = _LinearSolver(self.stats)
+        self.current = np.array(thickness, dtype=float).ravel()
+        phi, _ = problem.potential(self.current)
+        self.rate = thickening_rate(problem, phi)
+        self.previous = self.prev_rate = self.h_prev = None
+        self.exchange = (0.0, 0.0)
+        self.trial = None
+
+    def attempt(self, h: float) -> tuple[float, float]:
+        """Solve one step of length h; return (error estimate, order of the estimate)."""
+        p, free = self.problem, self.problem.free
+        first = self.previous is None
+        coeffs = bdf2_coefficients(None if first else h / self.h_prev)
+        hist = (self.current, self.current if first else self.previous)
+        pred = None
+        if not first:
+            pred = self.current + h * self.rate
+            pred += h * h / (2 * self.h_prev) * (self.rate - self.prev_rate)
+        new = _implicit_solve(p, hist, h, coeffs, self.tolerance, self.solver, self.stats, pred)
+        if new is None:
+            self.trial = None
+            return float("inf"), 1.0
+        gained = _conserve(p, new, hist, h, coeffs, self.exchange)
+        a0, a1, a2 = coeffs
+        base = a1 * self.current - (a2 * hist[1] if a2 else 0.0)
+        new_rate = np.zeros_like(self.rate)
+        new_rate[free] = (a0 * new[free] - base[free]) / h
+        self.trial = (new, new_rate, gained)
+        if not free.size:
+            return 0.0, 2.0
+        if first:
+            return 0.5 * h * float(np.max(np.abs(new_rate - self.rate)[free])), 2.0
+        return BDF2_ERROR_WEIGHT * float(np.max(np.abs(new - pred)[free])), 3.0
+
+    def accept(self, h: float) -> None:
+        new, new_rate, gained = self.trial
+        self.exchange = (gained, self.exchange[0])
+        self.stats.fixed_exchange = gained
+        self.previous, self.current = self.current, new
+        self.prev_rate, self.rate, self.h_prev = self.rate, new_rate, h
+        self.stats.steps += 1
+        self.stats.step_sizes.append(h)
 
 
 def steady_state(
@@ -414,8 +485,8 @@ def steady_state(
     thickness : numpy.ndarray
         Initial T, m, flat (the starting guess; with all edges closed it also fixes the volume).
     tolerance : float
-        m; the iteration stops when a step of at least :data:`STEADY_STEP` changes T by less
-        than ``1e-3 * tolerance``.
+        m; the iteration stops when a step of at least :data:`STEADY_MIN_STEP` changes T by less
+        than ``STEADY_FRACTION * tolerance``.
 
     Returns
     -------
@@ -434,7 +505,7 @@ def steady_state(
     solver = _LinearSolver(stats)
     state = np.array(thickness, dtype=float).ravel()
     phi, _ = problem.potential(state)
-    h = _first_step(problem, thickening_rate(problem, phi), tolerance, STEADY_STEP)
+    h = _first_step(problem, thickening_rate(problem, phi), tolerance, STEADY_MAX_STEP)
     exchange = (0.0, 0.0)
     for _ in range(STEADY_MAXITER):
         new = _implicit_solve(problem, (state, state), h, (1.0, 1.0, 0.0), tolerance, solver, stats)
@@ -447,7 +518,7 @@ def steady_state(
         change = float(np.max(np.abs(new - state)[problem.free])) if problem.free.size else 0.0
         state = new
         stats.steps += 1
-        if h >= STEADY_STEP and change < 1e-3 * tolerance:
+        if h >= STEADY_MIN_STEP and change < STEADY_FRACTION * tolerance:
             return state, stats
-        h *= STEADY_GROWTH if math.isfinite(change) else 1.0
+        h = min(STEADY_MAX_STEP, h * STEADY_GROWTH)
     raise RuntimeError("no steady state reached")
