@@ -81,27 +81,39 @@ def main() -> None:
         tolerance=args.tolerance_m,
     )
     began = time.perf_counter()
-    ds = evolve_grids(topo, parameters=params, spec=spec, crust_thickness=thickness, channel=channel)
+    ds = evolve_grids(
+        topo, parameters=params, spec=spec, crust_thickness=thickness, channel=channel
+    )
     wall = time.perf_counter() - began
     peak_gb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024 / 1e9
     cells = args.size * args.size
     stepping = json.loads(ds.attrs["stepping"])
     balance = json.loads(ds.attrs["volume_balance"])
-    print(f"machine: {platform.processor() or platform.machine()}, {os.cpu_count()} cores, "
-          f"load average {os.getloadavg()[0]:.1f}")
-    print(f"grid {args.size} x {args.size} ({cells:,} cells), {args.law}, "
-          f"{args.duration_myr:g} Myr, {ds.sizes['time']} snapshots")
-    print(f"wall time {wall:.1f} s; cells x steps per second {cells * stepping['steps'] / wall:,.0f}; "
-          f"cells per second (cells / wall time) {cells / wall:,.0f}")
+    print(
+        f"machine: {platform.processor() or platform.machine()}, {os.cpu_count()} cores, "
+        f"load average {os.getloadavg()[0]:.1f}"
+    )
+    print(
+        f"grid {args.size} x {args.size} ({cells:,} cells), {args.law}, "
+        f"{args.duration_myr:g} Myr, {ds.sizes['time']} snapshots"
+    )
+    print(
+        f"wall time {wall:.1f} s; cells x steps per second {cells * stepping['steps'] / wall:,.0f}; "
+        f"cells per second (cells / wall time) {cells / wall:,.0f}"
+    )
     print(f"peak memory (ru_maxrss) {peak_gb:.2f} GB")
-    print(f"steps {stepping['steps']}, repeated {stepping['rejected_steps']}, Newton iterations "
-          f"{stepping['newton_iterations']}, CG iterations {stepping['krylov_iterations']}, "
-          f"multigrid set-ups {stepping['multigrid_setups']}")
+    print(
+        f"steps {stepping['steps']}, repeated {stepping['rejected_steps']}, Newton iterations "
+        f"{stepping['newton_iterations']}, CG iterations {stepping['krylov_iterations']}, "
+        f"multigrid set-ups {stepping['multigrid_setups']}"
+    )
     print(f"volume mismatch {balance['imbalance_relative']:.1e} of the volume")
     target = TARGET_SECONDS[args.law]
     if args.size == 1000:
-        print(f"target wall time <= {target:g} s: {'met' if wall <= target else 'not met'}; "
-              f"peak <= {TARGET_PEAK_GB:g} GB: {'met' if peak_gb <= TARGET_PEAK_GB else 'not met'}")
+        print(
+            f"target wall time <= {target:g} s: {'met' if wall <= target else 'not met'}; "
+            f"peak <= {TARGET_PEAK_GB:g} GB: {'met' if peak_gb <= TARGET_PEAK_GB else 'not met'}"
+        )
 
 
 if __name__ == "__main__":

@@ -510,7 +510,9 @@ def _evolve(scenario_path: Path, out: Path, quiet: bool) -> int:
     if not quiet:
         s, b = result["summary"]["stepping"], result["summary"]["volume_balance"]
         print(f"crustflow evolve: {scenario.title} ({scenario.evolution.mode})")
-        print(f"  steps taken      {s['steps']} ({s['rejected_steps']} repeated with a shorter step)")
+        print(
+            f"  steps taken      {s['steps']} ({s['rejected_steps']} repeated with a shorter step)"
+        )
         print(
             f"  volume balance   change {b['volume_change_km3']:.6g} km3 = edge inflow "
             f"{b['edge_inflow_km3']:.6g} + fixed edges {b['fixed_edge_exchange_km3']:.6g} "

@@ -28,7 +28,7 @@ DIMENSIONS: dict[str, tuple[str, str, str]] = {
     "strain_rate": ("1 / [time]", "1/s", '"1e-14 1/s"'),
     "pressure": ("[mass] / [length] / [time] ** 2", "Pa", '"100 GPa"'),
     "time": ("[time]", "s", '"2 Myr"'),
-    "area_rate": ("[length] ** 2 / [time]", "m^2/s", '"300 m^2/yr"'),
+    "flux": ("[length] ** 2 / [time]", "m^2/s", '"300 m^2/yr"'),
 }
 
 

@@ -221,7 +221,9 @@ def net_inflow(face_flux: np.ndarray, net: FaceNetwork) -> np.ndarray:
     )
 
 
-def conductance_matrix(weights: np.ndarray, net: FaceNetwork, unknowns: np.ndarray) -> sp.csr_matrix:
+def conductance_matrix(
+    weights: np.ndarray, net: FaceNetwork, unknowns: np.ndarray
+) -> sp.csr_matrix:
     """Symmetric sparse matrix ``S`` of a two-point flux law, restricted to unknown cells.
 
     Parameters

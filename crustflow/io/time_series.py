@@ -48,7 +48,12 @@ def write_time_netcdf(ds: xr.Dataset, path: str | Path, *, attrs: dict | None = 
             encoding[name] = {"dtype": "int32"}
             continue
         var.attrs["grid_mapping"] = "spatial_ref"
-        encoding[name] = {"dtype": "float32", "zlib": True, "complevel": ZLIB_LEVEL, "_FillValue": np.float32(np.nan)}
+        encoding[name] = {
+            "dtype": "float32",
+            "zlib": True,
+            "complevel": ZLIB_LEVEL,
+            "_FillValue": np.float32(np.nan),
+        }
     for name in out.coords:
         if name != "spatial_ref":
             encoding[name] = {"_FillValue": None}
@@ -56,7 +61,14 @@ def write_time_netcdf(ds: xr.Dataset, path: str | Path, *, attrs: dict | None = 
 
 
 def write_band_stack(
-    values: np.ndarray, path: str | Path, *, crs, transform, descriptions, units: str, long_name: str
+    values: np.ndarray,
+    path: str | Path,
+    *,
+    crs,
+    transform,
+    descriptions,
+    units: str,
+    long_name: str,
 ) -> None:
     """Write a (band, y, x) stack as one tiled, compressed GeoTIFF, a band per time.
 

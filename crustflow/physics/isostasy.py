@@ -223,10 +223,12 @@ def isostatic_elevation(
     below it, switching where the surface crosses sea level. Path-independent, so the elevation is
     a function of the thickness alone (value derived from Turcotte & Schubert 2002, section 2.2).
     """
-    land = float(uplift_rate(1.0, 1.0, rho_channel=rho_channel, rho_mantle=rho_mantle,
-                             rho_water=rho_water))
-    sea = float(uplift_rate(1.0, -1.0, rho_channel=rho_channel, rho_mantle=rho_mantle,
-                            rho_water=rho_water))
+    land = float(
+        uplift_rate(1.0, 1.0, rho_channel=rho_channel, rho_mantle=rho_mantle, rho_water=rho_water)
+    )
+    sea = float(
+        uplift_rate(1.0, -1.0, rho_channel=rho_channel, rho_mantle=rho_mantle, rho_water=rho_water)
+    )
     change = np.asarray(crust_thickness, dtype=float) - crust_thickness0
     h0 = np.asarray(elevation0, dtype=float)
     start = np.where(h0 >= 0, land, sea)

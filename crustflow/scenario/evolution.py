@@ -134,7 +134,7 @@ def _parse_edge(name: str, value: object) -> EdgeCondition:
         return EdgeCondition(kind=value)
     if isinstance(value, dict) and set(value) == {"inflow"}:
         return EdgeCondition(
-            kind="inflow", inflow=parse_quantity(value["inflow"], f"{key}.inflow", "area_rate")
+            kind="inflow", inflow=parse_quantity(value["inflow"], f"{key}.inflow", "flux")
         )
     raise CrustflowInputError(
         f'{key} must be "closed", "fixed" or an inline table {{ inflow = "300 m^2/yr" }}'
@@ -146,7 +146,7 @@ def _positive_time(raw: dict, key: str, *, allow_zero: bool = False) -> float:
     if not math.isfinite(value) or value < 0 or (value == 0 and not allow_zero):
         need = "zero or positive" if allow_zero else "positive"
         raise CrustflowInputError(
-            f"evolution.{key} = {raw[key]!r} must be {need}, e.g. evolution.{key} = \"1 Myr\""
+            f'evolution.{key} = {raw[key]!r} must be {need}, e.g. evolution.{key} = "1 Myr"'
         )
     return value
 

@@ -51,9 +51,13 @@ def setup_for(elevation, dx, edges=None, *, cell=None, channel=None, params=None
     topo, thick = grid(elevation, dx)
     p = params or ModelParameters(channel_thickness=H_CH, viscosity=ETA)
     s = spec(**(edges or {}))
-    s = EvolutionSpec(mode=mode, duration=1.0, save_every=1.0, boundaries=s.boundaries, tolerance=0.01)
+    s = EvolutionSpec(
+        mode=mode, duration=1.0, save_every=1.0, boundaries=s.boundaries, tolerance=0.01
+    )
     cells = None if cell is None else {k: topo.copy(data=v) for k, v in cell.items()}
-    return build_setup(topo, parameters=p, spec=s, crust_thickness=thick, channel=channel, cell=cells)
+    return build_setup(
+        topo, parameters=p, spec=s, crust_thickness=thick, channel=channel, cell=cells
+    )
 
 
 def run(setup, times, tolerance=0.01, step=None):
@@ -163,8 +167,11 @@ def test_steady_flow_past_a_strong_block_is_a_dipole():
     X, Y = np.meshgrid(c, -c)
     r, theta = np.hypot(X, Y), np.arctan2(Y, X)
     beta = (1 - 1 / ratio) / (1 + 1 / ratio)
-    exact = np.where(r >= a, slope * (r + beta * a**2 / np.maximum(r, 1.0)) * np.cos(theta),
-                     slope * (1 + beta) * X)
+    exact = np.where(
+        r >= a,
+        slope * (r + beta * a**2 / np.maximum(r, 1.0)) * np.cos(theta),
+        slope * (1 + beta) * X,
+    )
     start = BASE + 1000 + slope * X
     edge = np.zeros((n, n), dtype=bool)
     edge[[0, -1], :] = edge[:, [0, -1]] = True
@@ -201,8 +208,9 @@ def test_power_law_steady_slope():
     prefactor, q0, nx, dx = 2.5e-32, 300.0 / (SECONDS_PER_MYR / 1e6), 80, 2000.0
     params, channel = _power_law(prefactor)
     edges = {"west": EdgeCondition("inflow", q0), "east": EdgeCondition("fixed")}
-    setup = setup_for(np.full((3, nx), BASE), dx, edges, channel=channel, params=params,
-                      mode="steady")
+    setup = setup_for(
+        np.full((3, nx), BASE), dx, edges, channel=channel, params=params, mode="steady"
+    )
     T, _ = steady_state(setup.problem, setup.thickness0.ravel(), tolerance=0.01)
     s = setup.elevation(T.reshape(3, nx))[1]
     measured = -np.diff(s[5:-5]) / dx
@@ -268,8 +276,12 @@ def test_time_step_convergence_on_a_geographic_grid():
     topo = topo.rio.write_crs("EPSG:4326")
     topo = topo.rio.write_transform(topo.rio.transform(recalc=True))
     thick = topo.copy(data=35e3 + elevation * RHO_C / (RHO_M - RHO_C))
-    setup = build_setup(topo, parameters=ModelParameters(channel_thickness=H_CH, viscosity=ETA),
-                        spec=spec(), crust_thickness=thick)
+    setup = build_setup(
+        topo,
+        parameters=ModelParameters(channel_thickness=H_CH, viscosity=ETA),
+        spec=spec(),
+        crust_thickness=thick,
+    )
     t = 0.2 * SECONDS_PER_MYR
     finals = [run(setup, [0.0, t], step=t / m)[0][t] for m in (4, 8, 16, 32)]
     diffs = [np.max(np.abs(finals[i] - finals[i + 1])) for i in range(3)]

@@ -58,7 +58,7 @@ def _attrs(name: str) -> dict:
 def _snapshot_arrays(setup: EvolutionSetup, thickness: np.ndarray, names) -> dict:
     """Practical-unit arrays (float32) of one state, from the maps' compute_fields."""
     T = thickness.reshape(setup.geometry.shape)
-    ds = setup.fields(T)
+    maps = setup.fields(T, [n for n in names if n not in EXTRA_ATTRS])
     out = {}
     for name in names:
         if name == "elevation":
@@ -66,7 +66,7 @@ def _snapshot_arrays(setup: EvolutionSetup, thickness: np.ndarray, names) -> dic
         elif name == "dynamic_topography":
             values = np.where(setup.domain, setup.elevation(T) - setup.elevation0, np.nan)
         else:
-            values = ds[name].values
+            values = maps[name]
         out[name] = np.asarray(values, dtype="float32")
     return out
 
@@ -137,10 +137,14 @@ def run_setup(
         except RuntimeError:
             raise CrustflowInputError(
                 "no steady state was reached for these edges (material keeps entering or "
-                "leaving); make an edge fixed or use mode = \"transient\""
+                'leaving); make an edge fixed or use mode = "transient"'
             ) from None
         arrays = _snapshot_arrays(setup, T, STEADY_VARIABLES)
-        volumes, times, exchange = [setup.volume(setup.thickness0), setup.volume(T.reshape(setup.geometry.shape))], [0.0, 0.0], stats.fixed_exchange
+        volumes, times, exchange = (
+            [setup.volume(setup.thickness0), setup.volume(T.reshape(setup.geometry.shape))],
+            [0.0, 0.0],
+            stats.fixed_exchange,
+        )
         attrs = dataset_attrs(setup, title)
         ds = _wrap(setup, arrays, _coords(setup), ("y", "x"), attrs)
     else:

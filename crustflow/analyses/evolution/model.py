@@ -6,8 +6,9 @@ report). The channel flux is computed from the current state with the maps' own 
 column and driving potential of :func:`crustflow.engine.fields.column_si` and the per-cell channel
 solution of :func:`crustflow.scenario.channel.solve_cells`, evaluated on the faces of the finite-volume
 network. Stepping is :func:`crustflow.physics.diffusion.integrate`. The saved variables of every
-snapshot come from :func:`crustflow.engine.api.compute_fields` on the state of that moment, so a
-snapshot is exactly what ``crustflow run`` gives for that elevation and thickness.
+snapshot come from :func:`crustflow.engine.fields.fields_si` (the engine function behind
+``crustflow run`` and :func:`crustflow.compute_fields`) on the state of that moment, so a snapshot
+is what ``crustflow run`` gives for that elevation and thickness.
 """
 
 from __future__ import annotations
@@ -20,8 +21,7 @@ import numpy as np
 import xarray as xr
 
 from crustflow._version import __version__
-from crustflow.engine.api import compute_fields
-from crustflow.engine.fields import column_si, crust_thickness_of
+from crustflow.engine.fields import column_si, crust_thickness_of, fields_si
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.finite_volume import edge_faces, face_network, harmonic_mean
 from crustflow.geometry.grid import GridGeometry, gradient, grid_geometry
@@ -30,7 +30,7 @@ from crustflow.physics.isostasy import isostatic_elevation
 from crustflow.scenario.channel import ChannelSetup, solve_cells
 from crustflow.scenario.evolution import EDGES, EvolutionSpec
 from crustflow.scenario.parameters import ModelParameters
-from crustflow.variables import CAUTION
+from crustflow.variables import CAUTION, to_practical
 
 __all__ = ["EvolutionSetup", "build_setup", "SECONDS_PER_MYR", "TIME_UNITS"]
 
@@ -96,19 +96,26 @@ class EvolutionSetup:
             rho_water=p.rho_water,
         )
 
-    def fields(self, thickness: np.ndarray) -> xr.Dataset:
-        """The map fields (practical units) of a state: ``compute_fields`` on H(T) and T."""
+    def fields(self, thickness: np.ndarray, wanted) -> dict:
+        """Map variables of a state in practical units: the engine's ``fields_si`` on H(T), T.
+
+        The same function ``crustflow run`` and :func:`crustflow.compute_fields` call, on the
+        same geometry, so a state gives the maps' numbers (the load filters, which evolve refuses,
+        are the only step of ``compute_fields`` left out).
+        """
         T = np.where(self.domain, thickness, np.nan)
         H = np.where(self.domain, self.elevation(T), np.nan)
-        topo = self.topography.copy(data=H)
-        return compute_fields(
-            topo,
-            parameters=self.parameters,
-            crust_thickness=self.topography.copy(data=T),
-            channel=self.channel,
+        si = fields_si(
+            H,
+            T,
+            self.geometry,
+            self.parameters,
+            wanted=set(wanted),
+            setup=self.channel,
+            cell=self.cell_si,
             load_setup=self.load_setup,
-            cell=self.cell or None,
         )
+        return {name: to_practical(name, si[name]) for name in wanted}
 
     def volume(self, thickness: np.ndarray) -> float:
         """Crustal volume of the domain, m^3."""
@@ -232,9 +239,15 @@ def build_setup(
     _check_supported(channel, load_setup, p)
     topo, ct, md, cell = _north_up(topography, crust_thickness, moho_depth, dict(cell or {}))
     transform = topo.rio.transform()
-    geom = grid_geometry(topo.x.values, topo.y.values, topo.rio.crs, spacing=(transform.a, transform.e))
+    geom = grid_geometry(
+        topo.x.values, topo.y.values, topo.rio.crs, spacing=(transform.a, transform.e)
+    )
     H = np.asarray(topo.values, dtype=float)
-    grids = {k: np.asarray(v.values, dtype=float) for k, v in (("crust_thickness", ct), ("moho_depth", md)) if v is not None}
+    grids = {
+        k: np.asarray(v.values, dtype=float)
+        for k, v in (("crust_thickness", ct), ("moho_depth", md))
+        if v is not None
+    }
     T = np.asarray(crust_thickness_of(H, p, **grids), dtype=float)
     cell_si = {k: np.asarray(v.values, dtype=float) for k, v in cell.items()}
     valid, conductance, wall_e, wall_n, exponent = _cell_laws(H, T, p, channel, load_setup, cell_si)
@@ -243,9 +256,14 @@ def build_setup(
     net = face_network(geom, domain)
     fixed, source = _edges(geom, domain, spec)
     c_flat, we, wn = conductance.ravel(), wall_e.ravel(), wall_n.ravel()
-    wall_face = np.where(
-        net.axis == 0, 0.5 * (we[net.left] + we[net.right]), 0.5 * (wn[net.left] + wn[net.right])
-    ) * net.sign
+    wall_face = (
+        np.where(
+            net.axis == 0,
+            0.5 * (we[net.left] + we[net.right]),
+            0.5 * (wn[net.left] + wn[net.right]),
+        )
+        * net.sign
+    )
     state = _Potential(geom, p, load_setup, cell_si, H0, T0, domain, net)
     free = np.flatnonzero(domain.ravel() & ~fixed.ravel())
     problem = ChannelTransport(
@@ -267,10 +285,12 @@ def build_setup(
         )
     if spec.mode == "steady" and not fixed.any() and np.sum(source) != 0:
         raise CrustflowInputError(
-            "evolution.mode = \"steady\" with inflow needs a \"fixed\" edge for the material to "
+            'evolution.mode = "steady" with inflow needs a "fixed" edge for the material to '
             "leave by (otherwise the crust thickens for ever); make one edge fixed"
         )
-    return EvolutionSetup(topo, geom, p, channel, load_setup, cell, cell_si, H0, T0, domain, fixed, problem, spec)
+    return EvolutionSetup(
+        topo, geom, p, channel, load_setup, cell, cell_si, H0, T0, domain, fixed, problem, spec
+    )
 
 
 class _Potential:
@@ -283,7 +303,12 @@ class _Potential:
     def _phi(self, T: np.ndarray) -> np.ndarray:
         p = self.p
         H = isostatic_elevation(
-            T, self.H0, self.T0, rho_channel=p.rho_channel, rho_mantle=p.rho_mantle, rho_water=p.rho_water
+            T,
+            self.H0,
+            self.T0,
+            rho_channel=p.rho_channel,
+            rho_mantle=p.rho_mantle,
+            rho_water=p.rho_water,
         )
         col = column_si(H, T, p, load_setup=self.ls, cell=self.cell)
         return col["p_top"] - p.rho_channel * p.gravity * col["z_top"]
@@ -306,7 +331,11 @@ class _Potential:
         d_east, d_north = gradient(field, self.geom)
         d_east, d_north = np.nan_to_num(d_east).ravel(), np.nan_to_num(d_north).ravel()
         net = self.net
-        across = np.where(net.axis == 0, d_north[net.left] + d_north[net.right], d_east[net.left] + d_east[net.right])
+        across = np.where(
+            net.axis == 0,
+            d_north[net.left] + d_north[net.right],
+            d_east[net.left] + d_east[net.right],
+        )
         return 0.5 * across
 
 
@@ -326,8 +355,12 @@ def time_coordinate(times_s) -> xr.Variable:
     return xr.Variable(
         "time",
         np.asarray(times_s, dtype=float) / SECONDS_PER_MYR,
-        {"units": TIME_UNITS, "long_name": "model time since the initial state", "axis": "T",
-         "comment": "1 Myr = 1e6 Julian years of 365.25 d"},
+        {
+            "units": TIME_UNITS,
+            "long_name": "model time since the initial state",
+            "axis": "T",
+            "comment": "1 Myr = 1e6 Julian years of 365.25 d",
+        },
     )
 
 
