@@ -111,6 +111,8 @@ def elevation_animation(
     label = ax.set_title("")
     ax.set_xlabel("x")
     ax.set_ylabel("y")
+    ax.tick_params(labelsize=7)
+    ax.tick_params(axis="x", labelrotation=30)
     add_caution(fig, "Arrows: channel flux.")
 
     def frame(k):
