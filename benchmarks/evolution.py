@@ -8,9 +8,10 @@ The grid is synthetic and projected (EPSG:32625, 1 km cells): an invented round 
 600 km across with smooth margins (tanh, 60 km wide), crust in Airy balance (35 km at sea level), a
 15 km channel, all edges closed. Newtonian: eta = 1e19 Pa s (kappa = 1.17e-4 m^2/s). Power law:
 n = 3 with the simple-shear prefactor A = 2.5e-32 Pa^-3 s^-1: an effective viscosity 1/(A tau^2) of
-1e19 Pa s at 2 MPa shear stress, so the two runs are of the same order (project choice, no source). The run goes through
-:func:`crustflow.analyses.evolution.evolve.evolve_grids` in this process (the command adds the writing
-of files). Peak memory is the process's resident high-water mark (``ru_maxrss``).
+1e19 Pa s at 2 MPa shear stress, so the two runs are of the same order (project choice, no
+source). The run goes through :func:`crustflow.analyses.evolution.evolve.evolve_grids` in this
+process (the command adds the writing of files). Peak memory is the process's resident high-water
+mark (``ru_maxrss``); CPU time is printed too, as the machine is shared.
 Nothing here asserts on timing; the targets (<= 120 s and <= 3 GB for Newtonian, <= 10 min for the
 power law) are reported, not enforced.
 """
@@ -105,7 +106,9 @@ def main() -> None:
         f"wall time {wall:.1f} s; cells x steps per second {cells * stepping['steps'] / wall:,.0f}; "
         f"cells per second (cells / wall time) {cells / wall:,.0f}"
     )
-    print(f"CPU time {cpu:.1f} s ({cpu / wall:.2f} cores busy on average; other jobs share the machine)")
+    print(
+        f"CPU time {cpu:.1f} s ({cpu / wall:.2f} cores busy on average; other jobs share the machine)"
+    )
     print(f"peak memory (ru_maxrss) {peak_gb:.2f} GB")
     print(
         f"steps {stepping['steps']}, repeated {stepping['rejected_steps']}, Newton iterations "

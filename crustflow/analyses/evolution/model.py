@@ -328,7 +328,10 @@ class _Potential:
                 f"the channel no longer fits in the crust in {int(lost.sum())} cells (the crust "
                 "thinned to the channel's thickness); shorten evolution.duration or thin the channel"
             )
-        phi, slope = np.where(self.domain, phi, 0.0).ravel(), np.where(self.domain, slope, 1.0).ravel()
+        phi, slope = (
+            np.where(self.domain, phi, 0.0).ravel(),
+            np.where(self.domain, slope, 1.0).ravel(),
+        )
         self._last = (np.array(thickness, dtype=float, copy=True), phi, slope)
         return phi, slope
 
