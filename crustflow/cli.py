@@ -513,11 +513,18 @@ def _evolve(scenario_path: Path, out: Path, quiet: bool) -> int:
         print(
             f"  steps taken      {s['steps']} ({s['rejected_steps']} repeated with a shorter step)"
         )
-        print(
-            f"  volume balance   change {b['volume_change_km3']:.6g} km3 = edge inflow "
-            f"{b['edge_inflow_km3']:.6g} + fixed edges {b['fixed_edge_exchange_km3']:.6g} "
-            f"(mismatch {b['imbalance_relative']:.1e} of the volume)"
-        )
+        if scenario.evolution.mode == "transient":
+            print(
+                f"  volume balance   change {b['volume_change_km3']:.6g} km3 = edge inflow "
+                f"{b['edge_inflow_km3']:.6g} + fixed edges {b['fixed_edge_exchange_km3']:.6g} "
+                f"(mismatch {b['imbalance_relative']:.1e} of the volume)"
+            )
+        else:
+            print(
+                f"  steady balance   edge inflow {b['edge_inflow_km3_per_Myr']:.6g} + fixed edges "
+                f"{b['fixed_edge_exchange_km3_per_Myr']:.6g} km3/Myr (mismatch "
+                f"{b['imbalance_relative']:.1e}); volume change {b['volume_change_km3']:.6g} km3"
+            )
         print(f"  largest elevation change {result['summary']['largest_elevation_change_m']:.4g} m")
         print(f"  wrote {out.expanduser().resolve()} in {time.perf_counter() - began:.1f} s")
         print("  caution: research estimate of a simplified model; not for hazard decisions")

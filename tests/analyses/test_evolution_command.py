@@ -120,6 +120,9 @@ def test_steady_mode_writes_dynamic_topography(tmp_path, capsys):
         scenario = load_scenario(_copy(tmp_path, "", "plain.toml"))
     steady = json.loads((out / "run.json").read_text())["evolution"]
     assert steady["mode"] == "steady"
+    # at the steady state what enters through the edges leaves through the fixed edge
+    balance = steady["volume_balance"]
+    assert abs(balance["imbalance_relative"]) < 1e-6
     assert scenario.evolution is None
 
 
