@@ -305,3 +305,20 @@ def test_stepping_rate_agrees_with_the_maps_rate_on_smooth_loads():
     inner = np.s_[2:-2, 2:-2]
     scale = np.max(np.abs(maps[inner]))
     assert np.max(np.abs(stepping[inner] - maps[inner])) < 0.01 * scale
+
+
+def test_multigrid_path_matches_the_direct_solves(monkeypatch):
+    # Large grids solve by AMG-preconditioned CG instead of sparse LU: same states within the
+    # solver tolerance (a fraction of the step tolerance), volume conserved to rounding.
+    import crustflow.physics.diffusion as diffusion
+
+    dx, n, sigma0 = 5000.0, 60, 30e3
+    c = (np.arange(n) + 0.5) * dx - n * dx / 2
+    r2 = c[None, :] ** 2 + c[:, None] ** 2
+    setup = setup_for(BASE + 300 * np.exp(-r2 / (2 * sigma0**2)), dx)
+    t = 0.1 * SECONDS_PER_MYR
+    direct, _ = run(setup, [0.0, t], tolerance=0.1)
+    monkeypatch.setattr(diffusion, "DIRECT_LIMIT", 0)
+    iterative, thick = run(setup, [0.0, t], tolerance=0.1)
+    assert np.max(np.abs(direct[t] - iterative[t])) < 0.01
+    assert setup.volume(thick[t]) == pytest.approx(setup.volume(thick[0.0]), rel=1e-12)
