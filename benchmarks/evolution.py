@@ -61,6 +61,13 @@ def main() -> None:
     parser.add_argument("--duration-myr", type=float, default=10.0)
     parser.add_argument("--snapshots", type=int, default=11)
     parser.add_argument("--tolerance-m", type=float, default=5.0)
+    parser.add_argument(
+        "--extent-km",
+        type=float,
+        default=None,
+        help="side of the square grid, km (default: 1 km cells); e.g. --size 250 --extent-km 1000 "
+        "gives the 1000 x 1000 landscape at 4 km cells",
+    )
     args = parser.parse_args()
 
     from crustflow.analyses.evolution.evolve import evolve_grids
@@ -69,7 +76,8 @@ def main() -> None:
     from crustflow.scenario.evolution import EvolutionSpec
     from crustflow.scenario.parameters import ModelParameters
 
-    topo, thickness = plateau(args.size)
+    cell = 1000.0 if args.extent_km is None else args.extent_km * 1e3 / args.size
+    topo, thickness = plateau(args.size, cell)
     if args.law == "newtonian":
         params, channel = ModelParameters(channel_thickness=15e3, viscosity=1e19), None
     else:
