@@ -78,3 +78,27 @@ def test_error_control_meets_the_tolerance():
     exact = start * np.exp(-lam * t)
     assert np.max(np.abs(seen[t] - exact)) < 1e-2
     assert stats.steps > 5 and stats.rejected >= 0
+
+
+def test_barenblatt_profile_solves_the_p_laplacian():
+    # The self-similar solution used in tests/analyses/test_evolution_analytic.py, from memory
+    # (Barenblatt 1952, Prikl. Mat. Mekh. 16): check by finite differences that it satisfies
+    # u_t = (|u_x|^(p-2) u_x)_x inside its support (1-D, p = 4).
+    p = 4.0
+    alpha = beta = 1 / (2 * p - 2)
+    k = (p - 2) / p * beta ** (1 / (p - 1))
+
+    def u(x, t, c=1.0):
+        core = np.maximum(c - k * (np.abs(x) * t**-beta) ** (p / (p - 1)), 0.0)
+        return t**-alpha * core ** ((p - 1) / (p - 2))
+
+    e = 1e-4
+    for x0, t0 in ((0.3, 1.0), (0.5, 2.0), (0.1, 3.0)):
+        u_t = (u(x0, t0 + e) - u(x0, t0 - e)) / (2 * e)
+
+        def flux(x, t=t0):
+            u_x = (u(x + e, t) - u(x - e, t)) / (2 * e)
+            return abs(u_x) ** (p - 2) * u_x
+
+        div = (flux(x0 + e) - flux(x0 - e)) / (2 * e)
+        assert u_t == pytest.approx(div, rel=1e-5)
