@@ -254,6 +254,7 @@ class _LinearSolver:
         return matrix
 
     def solve(self, matrix, rhs, key: float, atol: float, *, reuse: bool) -> np.ndarray:
+        """Solve ``matrix x = rhs``; ``reuse``: the matrix only changes with ``key`` (linear law)."""
         if rhs.size <= DIRECT_LIMIT:
             if not reuse:
                 return spla.splu(matrix.tocsc(), permc_spec=ORDERING).solve(rhs)
@@ -262,7 +263,8 @@ class _LinearSolver:
                     self.factors.pop(next(iter(self.factors)))
                 self.factors[key] = spla.splu(matrix.tocsc(), permc_spec=ORDERING)
             return self.factors[key].solve(rhs)
-        if self.hierarchy is None or not (1 / HIERARCHY_RANGE < key / self.key < HIERARCHY_RANGE):
+        near = self.key is not None and 1 / HIERARCHY_RANGE < key / self.key < HIERARCHY_RANGE
+        if self.hierarchy is None or not near or not reuse:  # nonlinear: conductances changed
             self._setup(matrix, key)
         x, iterations = self._cg(matrix, rhs, atol)
         if x is None:  # the kept hierarchy no longer fits the matrix: rebuild once
