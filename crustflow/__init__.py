@@ -32,6 +32,7 @@ _LAZY = {
     "channel_flow": "crustflow.physics.channel",
     "velocity_profile": "crustflow.physics.channel",
     "fit": "crustflow.analyses.fitting.run",
+    "evolve": "crustflow.analyses.evolution.evolve",
 }
 
 #: Module paths documented before the package was layered -> where they live now. ``import

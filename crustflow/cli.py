@@ -270,6 +270,34 @@ def _do_fit(args) -> int:
     return 0
 
 
+def _do_evolve(args) -> int:
+    result = _command("evolve").evolve(args.scenario, args.out, progress=_bar(args))
+    if not args.quiet:
+        _print_evolution_summary(result)
+    _say(f"wrote {result['folder']} in {result['seconds']:.1f} s", args.quiet)
+    return 0
+
+
+def _print_evolution_summary(result: dict) -> None:
+    scenario, summary = result["scenario"], result["summary"]
+    s, b = summary["stepping"], summary["volume_balance"]
+    print(f"  {scenario.title} ({scenario.evolution.mode})")
+    print(f"  steps taken      {s['steps']} ({s['rejected_steps']} repeated with a shorter step)")
+    if scenario.evolution.mode == "transient":
+        print(
+            f"  volume balance   change {b['volume_change_km3']:.6g} km3 = edge inflow "
+            f"{b['edge_inflow_km3']:.6g} + fixed edges {b['fixed_edge_exchange_km3']:.6g} "
+            f"(mismatch {b['imbalance_relative']:.1e} of the volume)"
+        )
+    else:
+        print(
+            f"  steady balance   edge inflow {b['edge_inflow_km3_per_Myr']:.6g} + fixed edges "
+            f"{b['fixed_edge_exchange_km3_per_Myr']:.6g} km3/Myr (mismatch "
+            f"{b['imbalance_relative']:.1e}); volume change {b['volume_change_km3']:.6g} km3"
+        )
+    print(f"  largest elevation change {summary['largest_elevation_change_m']:.4g} m")
+
+
 def _do_check(args) -> int:
     _print_check(_command("check").check(args.scenario))
     return 0
@@ -283,6 +311,7 @@ _COMMANDS = {
     "ensemble": _do_ensemble,
     "check": _do_check,
     "fit": _do_fit,
+    "evolve": _do_evolve,
 }
 
 
@@ -418,6 +447,21 @@ def _add_ensemble(sub) -> None:
     _add_quiet(ensemble)
 
 
+def _add_evolve(sub) -> None:
+    evolve = sub.add_parser(
+        "evolve",
+        help="step topography and crust through time under channel flow, or find the steady state",
+        description="Step the crust through time as the scenario's [evolution] table says "
+        "(implicit, volume-conserving; elevation by Airy isostasy) and write evolution.nc or "
+        "steady.nc, GeoTIFFs with a band per snapshot, elevation profiles and an animation. "
+        "Assumes fixed channel thickness and viscosity in space and no erosion.\n\n" + CAUTION_HELP,
+        formatter_class=_FORMAT,
+    )
+    evolve.add_argument("scenario", type=Path, help="scenario file (TOML) with [evolution]")
+    _add_out(evolve, "crustflow_evolution", "")
+    _add_quiet(evolve)
+
+
 def _add_fit(sub) -> None:
     fit = sub.add_parser(
         "fit",
@@ -460,6 +504,7 @@ def build_parser() -> argparse.ArgumentParser:
         _add_budget,
         _add_profile,
         _add_ensemble,
+        _add_evolve,
         _add_fit,
         _add_check,
     ):

@@ -38,6 +38,8 @@ DIMENSIONS: dict[str, tuple[str, str, str]] = {
     "molar_energy": ("[mass] * [length] ** 2 / [time] ** 2 / [substance]", "J/mol", '"223 kJ/mol"'),
     "strain_rate": ("1 / [time]", "1/s", '"1e-14 1/s"'),
     "pressure": ("[mass] / [length] / [time] ** 2", "Pa", '"100 GPa"'),
+    "time": ("[time]", "s", '"2 Myr"'),
+    "flux": ("[length] ** 2 / [time]", "m^2/s", '"300 m^2/yr"'),
 }
 
 

@@ -190,3 +190,53 @@ def uplift_rate(
     land = (1.0 - rho_channel / rho_mantle) * thickening_rate
     sea = (rho_mantle - rho_channel) / (rho_mantle - rho_water) * thickening_rate
     return np.where(elevation >= 0, land, sea)
+
+
+def isostatic_elevation(
+    crust_thickness,
+    elevation0,
+    crust_thickness0,
+    *,
+    rho_channel: float,
+    rho_mantle: float,
+    rho_water: float,
+):
+    """Surface elevation after the crust thickened (or thinned) from T0 to T by channel material.
+
+    Parameters
+    ----------
+    crust_thickness : array_like
+        T, m.
+    elevation0, crust_thickness0 : array_like
+        H and T of the same columns at the start, m.
+    rho_channel, rho_mantle, rho_water : float
+        kg/m^3.
+
+    Returns
+    -------
+    array_like
+        H, m.
+
+    Notes
+    -----
+    The integral of :func:`uplift_rate` along the path from T0 to T: ``dH/dT`` is the land factor
+    ``1 - rho_ch/rho_m`` above sea level and the water factor ``(rho_m - rho_ch)/(rho_m - rho_w)``
+    below it, switching where the surface crosses sea level. Path-independent, so the elevation is
+    a function of the thickness alone (value derived from Turcotte & Schubert 2002, section 2.2).
+    """
+    land = float(
+        uplift_rate(1.0, 1.0, rho_channel=rho_channel, rho_mantle=rho_mantle, rho_water=rho_water)
+    )
+    sea = float(
+        uplift_rate(1.0, -1.0, rho_channel=rho_channel, rho_mantle=rho_mantle, rho_water=rho_water)
+    )
+    change = np.asarray(crust_thickness, dtype=float) - crust_thickness0
+    h0 = np.asarray(elevation0, dtype=float)
+    start = np.where(h0 >= 0, land, sea)
+    direct = h0 + start * change
+    # thickness change that brings the surface to sea level, then the other factor beyond it
+    with np.errstate(invalid="ignore", divide="ignore"):
+        to_shore = -h0 / start
+    other = np.where(h0 >= 0, sea, land)
+    crossed = np.where(h0 >= 0, direct < 0, direct >= 0)
+    return np.where(crossed, other * (change - to_shore), direct)

@@ -15,6 +15,7 @@ from typing import Any
 from crustflow.errors import CrustflowInputError
 from crustflow.scenario.channel import ChannelSetup, parse_channel
 from crustflow.scenario.ensemble import parse_ensemble
+from crustflow.scenario.evolution import EvolutionSpec, parse_evolution
 from crustflow.scenario.fit import FitSpec, parse_fit
 from crustflow.scenario.load import LoadSetup, parse_load
 from crustflow.scenario.parameters import ModelParameters
@@ -82,6 +83,7 @@ _SCHEMA: dict[str, Any] = {
     "roof": {"layers": "list"},  # checked by crustflow.scenario.load
     "ensemble": "table",  # checked by crustflow.analyses.ensemble.run.parse_ensemble
     "fit": "table",  # checked by crustflow.scenario.fit.parse_fit
+    "evolution": "table",  # checked by crustflow.scenario.evolution
     "load": {
         "smoothing": "length",
         "elastic_thickness": "length",
@@ -138,6 +140,7 @@ class Scenario:
     fit: FitSpec | None = None  #: observations, priors and sampler when [fit] is given
     figure_formats: tuple[str, ...] = FIGURE_FORMATS[:1]
     figure_dpi: int = FIGURE_DPI
+    evolution: EvolutionSpec | None = None  #: the [evolution] table, when given
 
     def resolved(self) -> dict:
         """The scenario resolved to SI units, as a JSON-ready dict."""
@@ -250,6 +253,7 @@ def scenario_from_dict(
         **_parse_budgets(raw.get("budgets", {}), base),
         ensemble=_parse_ensemble_table(raw, params),
         fit=parse_fit(raw["fit"], params, base) if "fit" in raw else None,
+        evolution=parse_evolution(raw.get("evolution")),
         source=source,
         written=raw,
     )

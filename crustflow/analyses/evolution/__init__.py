@@ -1,0 +1,1 @@
+"""Analyses through time: evolution of topography and crust, steady states."""
