@@ -4,7 +4,10 @@ The grid is processed in strips of rows, each read by the one block reader
 (:mod:`crustflow.engine.blocks`: halo rows, SI parameter grids, geometry) and computed with
 :func:`~crustflow.engine.blocks.block_fields`, cropped and written into every output file; the
 result is identical, bit for bit, to the whole-grid result. Peak memory is set by the strip size,
-not the grid size, except for the whole-grid load step (filters, thin-channel flag).
+not the grid size. The whole-grid load step (filters, thin-channel flag) runs in memory on small
+grids and out of core above :data:`crustflow.engine.outofcore.IN_MEMORY_CELLS` cells
+(:mod:`crustflow.engine.outofcore`, scratch files in a temporary folder inside ``folder``), so
+memory stays bounded at any size.
 
 A run is: a :class:`RunPlan` (variables, strip height), the whole-grid pre-step, the loop over
 strips (here or on a dask.distributed cluster), the :class:`_Sinks` that write NetCDF and GeoTIFF
@@ -14,7 +17,9 @@ in a background thread, and the :class:`_Summary` of ranges and counts for the t
 from __future__ import annotations
 
 import json
+import shutil
 import sys
+import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -24,7 +29,7 @@ import numpy as np
 from crustflow.engine.blocks import HALO_ROWS, BlockReader, WholeGridLoad, block_fields
 from crustflow.engine.checks import InputChecks
 from crustflow.engine.fields import CELL_EXTRAS
-from crustflow.errors import CrustflowInputError
+from crustflow.engine.outofcore import IN_MEMORY_CELLS, out_of_core_load
 from crustflow.io.grids import provenance
 from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
 from crustflow.variables import CAUTION, VARIABLES, to_practical, variable_attrs
@@ -38,10 +43,6 @@ CELLS_PER_STRIP = 1 << 19
 
 #: Rows of one output GeoTIFF tile (crustflow.io.writers.GeotiffWriter writes 256 x 256 tiles).
 TILE_ROWS = 256
-
-#: Largest grid (cells) for the whole-grid steps: load filters and the thin-channel warning hold
-#: about ten float64 copies of the grid (8 GB at this size on a 24 GB machine).
-WHOLE_GRID_CELLS = 100_000_000
 
 #: Variables the volume budgets and arrow layers read.
 BUDGET_VARIABLES = (
@@ -124,32 +125,46 @@ def run_strips(
 
     names = list(scenario.variables or VARIABLES)
     cache = _gdal_cache_bytes(len(names) + len(BUDGET_VARIABLES), _width_of(scenario))
-    with rasterio.Env(GDAL_CACHEMAX=cache), BlockReader(scenario) as reader:
-        plan = plan_run(scenario, reader.height, reader.width, strip_rows, budget_fields)
-        whole = _whole_grid_step(reader, plan, note)
-        with _Sinks(scenario, reader, plan, Path(folder), budget_fields) as sinks:
-            note("compute and write")
-            summary = _Summary(plan, reader)
-            checks = InputChecks(reader.sources, scenario.parameters.channel_thickness)
-            bar = _progress_bar(reader.height, plan.rows, progress)
-            for result in _strip_results(reader, plan, whole, client):
-                bar.update(result["rows"])
-                checks.merge(result["checks"])
-                if checks.failed:
-                    break
-                sinks.write_strip(result["r0"], result["out"])
-                summary.add(result["r0"], result["out"])
-            bar.close()
-            sinks.complete()
-            checks.finish()  # on early exit these stats are partial: enough to name the cause
-        return summary.result(
-            written=sinks.written,
-            provenance=provenance(reader.sources),
-            excluded=checks.column.excluded,
-            whole=whole,
-            budget_fields=sinks.budget_path,
-            title=scenario.title,
-        )
+    scratch = Path(tempfile.mkdtemp(prefix=".scratch-", dir=folder))
+    whole = WholeGridLoad()
+    try:
+        with rasterio.Env(GDAL_CACHEMAX=cache), BlockReader(scenario) as reader:
+            plan = plan_run(scenario, reader.height, reader.width, strip_rows, budget_fields)
+            whole = _whole_grid_step(reader, plan, note, scratch)
+            return _loop(
+                scenario, reader, plan, whole, Path(folder), budget_fields, note, progress, client
+            )
+    finally:
+        if hasattr(whole, "close"):
+            whole.close()
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _loop(scenario, reader, plan, whole, folder, budget_fields, note, progress, client) -> dict:
+    """Compute, write and summarise the strips (see :func:`run_strips`)."""
+    with _Sinks(scenario, reader, plan, Path(folder), budget_fields) as sinks:
+        note("compute and write")
+        summary = _Summary(plan, reader)
+        checks = InputChecks(reader.sources, scenario.parameters.channel_thickness)
+        bar = _progress_bar(reader.height, plan.rows, progress)
+        for result in _strip_results(reader, plan, whole, client):
+            bar.update(result["rows"])
+            checks.merge(result["checks"])
+            if checks.failed:
+                break
+            sinks.write_strip(result["r0"], result["out"])
+            summary.add(result["r0"], result["out"])
+        bar.close()
+        sinks.complete()
+        checks.finish()  # on early exit these stats are partial: enough to name the cause
+    return summary.result(
+        written=sinks.written,
+        provenance=provenance(reader.sources),
+        excluded=checks.column.excluded,
+        whole=whole,
+        budget_fields=sinks.budget_path,
+        title=scenario.title,
+    )
 
 
 def _width_of(scenario) -> int:
@@ -183,15 +198,10 @@ class RunPlan:
 
 
 def plan_run(scenario, height: int, width: int, strip_rows=None, budget_fields=None) -> RunPlan:
-    """The variables a run computes and writes and its strip height; refuses whole-grid steps
-    on grids larger than :data:`WHOLE_GRID_CELLS`."""
+    """The variables a run computes and writes and its strip height (every variable at any grid
+    size: the whole-grid steps run out of core on large grids)."""
     names = list(scenario.variables or VARIABLES)
-    skipped = []
-    if height * width > WHOLE_GRID_CELLS:
-        _refuse_whole_grid_steps(scenario, height * width)
-        if "thin_channel_warning" in names:
-            names.remove("thin_channel_warning")
-            skipped.append("thin_channel_warning")
+    skipped: list[str] = []
     make_figure = "figure" in scenario.formats
     wanted = set(names) | set(FIGURE_VARIABLES if make_figure else ())
     if budget_fields is not None:
@@ -204,33 +214,20 @@ def plan_run(scenario, height: int, width: int, strip_rows=None, budget_fields=N
     )
 
 
-def _refuse_whole_grid_steps(scenario, cells: int) -> None:
-    # Whole-grid steps hold several float64 copies of the grid in memory.
-    if scenario.load.filtered:
-        raise CrustflowInputError(
-            f"[load] smoothing / elastic_thickness act on the whole grid, and this grid "
-            f"has {cells:,} cells (more than {WHOLE_GRID_CELLS:,}); resample the "
-            "grids coarser for a filtered run, or remove the [load] filters"
-        )
-    if scenario.variables and "thin_channel_warning" in scenario.variables:
-        raise CrustflowInputError(
-            f"thin_channel_warning needs the whole grid in memory and this grid has "
-            f"{cells:,} cells (more than {WHOLE_GRID_CELLS:,}); remove it "
-            "from [output] variables or resample the grids coarser"
-        )
-
-
 #: Variables the figure draws.
 FIGURE_VARIABLES = ("flux_magnitude", "flux_east", "flux_north")
 
 
-def _whole_grid_step(reader: BlockReader, plan: RunPlan, note) -> WholeGridLoad:
-    """The load filters and the thin-channel flag, over the whole grid, before the strips."""
+def _whole_grid_step(reader: BlockReader, plan: RunPlan, note, scratch: Path):
+    """The load filters and the thin-channel flag, over the whole grid, before the strips: in
+    memory up to :data:`IN_MEMORY_CELLS` cells, out of core (files in ``scratch``) above."""
     thin = "thin_channel_warning" in plan.wanted
     if not (plan.filtered or thin):
         return WholeGridLoad()
     note("whole-grid load")
-    return reader.whole_grid_load(filtered=plan.filtered, thin_channel=thin)
+    if plan.height * plan.width <= IN_MEMORY_CELLS:
+        return reader.whole_grid_load(filtered=plan.filtered, thin_channel=thin)
+    return out_of_core_load(reader, scratch, filtered=plan.filtered, thin_channel=thin)
 
 
 def _progress_bar(height: int, rows: int, progress: bool):
@@ -424,7 +421,7 @@ class _Summary:
         if plan.make_figure:
             x, y, crs = self.grid
             figure = _figure_dataset(self.figure_rows, x, y, self.step, crs, title)
-        thin = whole.thin_channel
+        thin = whole.flagged_cells()
         return {
             "written": written,
             "provenance": provenance,
@@ -434,7 +431,7 @@ class _Summary:
             "figure": figure,
             "unconverged_cells": self.counts["unconverged"],
             "excluded_cells": excluded,
-            "thin_channel_cells": None if thin is None else int(np.nansum(thin)),
+            "thin_channel_cells": thin,
             "budget_fields": budget_fields,
             "skipped_variables": plan.skipped,
             "shape": [plan.height, plan.width],
