@@ -31,7 +31,7 @@ from crustflow.engine.checks import InputChecks
 from crustflow.engine.fields import CELL_EXTRAS
 from crustflow.engine.outofcore import IN_MEMORY_CELLS, out_of_core_load
 from crustflow.io.grids import provenance
-from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
+from crustflow.io.writers import GeotiffWriter, NetcdfWriter, check_compression, netcdf_attrs
 from crustflow.variables import CAUTION, VARIABLES, to_practical, variable_attrs
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
@@ -123,6 +123,7 @@ def run_strips(
     note("open grids")
     import rasterio
 
+    check_compression(scenario.compression, scenario.formats)
     names = list(scenario.variables or VARIABLES)
     cache = _gdal_cache_bytes(len(names) + len(BUDGET_VARIABLES), _width_of(scenario))
     scratch = Path(tempfile.mkdtemp(prefix=".scratch-", dir=folder))
@@ -311,14 +312,17 @@ def compute_strip(
 
 
 class _Sinks:
-    """The run's output files (NetCDF, GeoTIFF, the budgets' side file), written in a background
-    thread strip by strip; closed on exit, also on errors."""
+    """The run's output files (NetCDF, GeoTIFF, the budgets' side file), written strip by strip in
+    two background threads, one for the NetCDF files and one for the GeoTIFFs (netCDF4 and GDAL
+    release the GIL while compressing, so the two codecs run on both cores); closed on exit, also
+    on errors."""
 
     def __init__(self, scenario, reader: BlockReader, plan: RunPlan, folder: Path, budget_fields):
         self.plan, self.written, self._files = plan, [], []
         self.nc = self.side = self.tifs = None
         self.budget_path = None
         self._grid = (reader.x, reader.y, reader.crs, reader.transform)
+        self._codec = scenario.compression
         attrs = netcdf_attrs(
             scenario.title, json.dumps(scenario.written), dict(vars(scenario.parameters))
         )
@@ -334,12 +338,14 @@ class _Sinks:
         if "geotiff" in scenario.formats:
             self.tifs = {n: self._geotiff(folder / f"{n}.tif", n) for n in plan.names}
             self.written += [f"{n}.tif" for n in plan.names]
-        self._writer = _BackgroundWriter(self._write)
+        self._writers = [_BackgroundWriter(self._write_netcdf), _BackgroundWriter(self._write_tifs)]
 
     def _netcdf(self, path: Path, names, attrs) -> NetcdfWriter:
         x, y, crs, t = self._grid
         attrs_of = {n: variable_attrs(n) for n in names}
-        writer = NetcdfWriter(path, x, y, crs, t, attrs_of, attrs, chunk_rows=self.plan.rows)
+        writer = NetcdfWriter(
+            path, x, y, crs, t, attrs_of, attrs, chunk_rows=self.plan.rows, compression=self._codec
+        )
         self._files.append(writer)
         return writer
 
@@ -352,25 +358,30 @@ class _Sinks:
             height=self.plan.height,
             width=self.plan.width,
             attrs=dict(variable_attrs(name), caution=CAUTION),
+            compression=self._codec,
         )
         self._files.append(writer)
         return writer
 
-    def _write(self, r0: int, out: dict) -> None:
+    def _write_netcdf(self, r0: int, out: dict) -> None:
         if self.nc is not None:
             self.nc.write_rows(r0, {n: out[n] for n in self.plan.names})
         if self.side is not None:
             self.side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
+
+    def _write_tifs(self, r0: int, out: dict) -> None:
         for n, tif in (self.tifs or {}).items():
             tif.write_rows(r0, out[n])
 
     def write_strip(self, r0: int, out: dict) -> None:
-        """Queue a strip's rows for writing."""
-        self._writer.put(r0, out)
+        """Queue a strip's rows for writing (the arrays are only read, by both threads)."""
+        for writer in self._writers:
+            writer.put(r0, out)
 
     def complete(self) -> None:
-        """Write what is queued and close every file (raises the writer's error, if any)."""
-        self._writer.finish()
+        """Write what is queued and close every file (raises a writer's error, if any)."""
+        for writer in self._writers:
+            writer.finish()
         self._close()
 
     def _close(self) -> None:
@@ -382,7 +393,8 @@ class _Sinks:
         return self
 
     def __exit__(self, *exc) -> None:
-        self._writer.finish(raise_errors=False)
+        for writer in self._writers:
+            writer.finish(raise_errors=False)
         self._close()
 
 

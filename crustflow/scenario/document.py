@@ -21,10 +21,21 @@ from crustflow.scenario.parameters import ModelParameters
 from crustflow.units import parse_quantity, parse_vector
 from crustflow.variables import VARIABLES
 
-__all__ = ["ModelParameters", "Scenario", "load_scenario", "scenario_from_dict", "FORMATS"]
+__all__ = [
+    "ModelParameters",
+    "Scenario",
+    "load_scenario",
+    "scenario_from_dict",
+    "FORMATS",
+    "COMPRESSIONS",
+]
 
 #: Output formats an ``[output] formats`` list may name.
 FORMATS = ("netcdf", "geotiff", "figure")
+
+#: Codecs an ``[output] compression`` may name (lossless; crustflow.io.writers maps them onto
+#: GDAL and netCDF4 options). ``deflate`` (the default) is readable by every GIS and NetCDF reader.
+COMPRESSIONS = ("deflate", "zstd", "lerc_zstd", "none")
 
 # Table -> key -> kind ("path", "text", a units kind of crustflow.units.DIMENSIONS, "vector:<kind>",
 # "list"). The nested tables are the scenario file's sections.
@@ -57,7 +68,7 @@ _SCHEMA: dict[str, Any] = {
     },
     "walls": {"upper_velocity": "vector:velocity"},
     "constants": {"gravity": "acceleration"},
-    "output": {"variables": "list", "formats": "list"},
+    "output": {"variables": "list", "formats": "list", "compression": "text"},
     "budgets": {"sections": "path", "regions": "path"},
     "roof": {"layers": "list"},  # checked by crustflow.scenario.load
     "ensemble": "table",  # checked by crustflow.analyses.ensemble.run.parse_ensemble
@@ -87,6 +98,8 @@ class Scenario:
         Output variables (None: all).
     formats : tuple of str
         Output formats, from :data:`FORMATS`.
+    compression : str
+        Codec of the NetCDF and GeoTIFF outputs, from :data:`COMPRESSIONS` (default "deflate").
     source : Path or None
         The scenario file, if read from one.
     written : dict
@@ -101,6 +114,7 @@ class Scenario:
     crs: str | None = None
     variables: tuple[str, ...] | None = None
     formats: tuple[str, ...] = FORMATS
+    compression: str = "deflate"  #: output codec, from COMPRESSIONS
     source: Path | None = None
     written: dict = field(default_factory=dict, compare=False, repr=False)
     sections: Path | None = None
@@ -131,6 +145,7 @@ class Scenario:
             "output": {
                 "variables": list(self.variables) if self.variables else "all",
                 "formats": list(self.formats),
+                "compression": self.compression,
             },
         }
         return out
@@ -314,7 +329,18 @@ def _parse_output(output: dict) -> dict:
     for name in formats:
         if name not in FORMATS:
             raise _unknown_key(name, list(FORMATS), "output.formats")
-    return {"variables": variables, "formats": tuple(dict.fromkeys(formats))}
+    compression = output.get("compression", "deflate")
+    if compression not in COMPRESSIONS:
+        raise CrustflowInputError(
+            f"output.compression is {compression!r}; give one of "
+            f'{", ".join(repr(c) for c in COMPRESSIONS)} ("deflate", the default, is read '
+            'everywhere; "zstd" writes faster)'
+        )
+    return {
+        "variables": variables,
+        "formats": tuple(dict.fromkeys(formats)),
+        "compression": compression,
+    }
 
 
 def _parse_budgets(budgets: dict, base: Path) -> dict:
