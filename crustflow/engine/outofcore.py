@@ -151,21 +151,21 @@ def out_of_core_load(
         load._grids.append(grid)
         return grid
 
+    ls, p = scenario.load, scenario.parameters
+    filtered = filtered and ls.filtered
     try:
-        phi, reference = scratch("potential"), scratch("reference")
+        phi = scratch("potential")
+        reference = scratch("reference") if filtered else None
         stats = _potential(reader, phi, reference)
         geometry = _geometry(reader, 0, reader.height)
         frame = local_frame(geometry)
-        ls, p = scenario.load, scenario.parameters
-        if filtered and ls.filtered:
+        if filtered:
             for i, response in enumerate(_load_responses(ls, p)):
                 out = scratch(f"filtered{i}")
                 filter_scratch(phi, out, frame, response, fallback=stats["mean"])
                 _drop(load, phi)
                 phi = out
             load.potential, load.reference = phi, reference
-        else:
-            _drop(load, reference)
         if thin_channel:
             load.thin, load.flagged = _thin_channel(reader, phi, frame, stats, scratch)
         if load.potential is None:
@@ -204,9 +204,9 @@ def _load_responses(ls, p) -> list:
     return [r for r in responses if r is not None]
 
 
-def _potential(reader: BlockReader, phi: ScratchGrid, reference: ScratchGrid) -> dict:
-    """Pass 1: the driving potential and the reference load, band by band; returns the largest
-    channel thickness (m) and the mean of the potential (Pa)."""
+def _potential(reader: BlockReader, phi: ScratchGrid, reference: ScratchGrid | None) -> dict:
+    """Pass 1: the driving potential and (if asked for) the reference load, band by band; returns
+    the largest channel thickness (m), the mean of the potential (Pa) and the valid cells."""
     scenario = reader.scenario
     p = scenario.parameters
     h_max, total, count = -math.inf, 0.0, 0
@@ -223,7 +223,8 @@ def _potential(reader: BlockReader, phi: ScratchGrid, reference: ScratchGrid) ->
         ref = p.rho_channel * p.gravity * col["z_top"]
         values = np.where(col["valid"], col["p_top"] - ref, np.nan)
         phi.write_rows(r0, values)
-        reference.write_rows(r0, np.broadcast_to(ref, values.shape))
+        if reference is not None:
+            reference.write_rows(r0, np.broadcast_to(ref, values.shape))
         h = np.asarray(col["h"], dtype=float)
         finite = h[np.isfinite(h)]
         if finite.size:
@@ -275,7 +276,8 @@ def filter_scratch(
     nodata_seen = False
     for r0 in src.bands():
         r1 = min(n, r0 + t)
-        a, b = max(0, r0 - fill_halo), min(n, r1 + fill_halo)
+        halo = fill_halo if src.has_nan else 0
+        a, b = max(0, r0 - halo), min(n, r1 + halo)
         window = src.read_rows(a, b)
         nodata = ~np.isfinite(window)
         if nodata.all():

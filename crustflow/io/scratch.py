@@ -51,6 +51,7 @@ class ScratchGrid:
         self.tile_rows = -(-height // tile)
         self.tile_cols = -(-width // tile)
         self._tile_bytes = tile * tile * self.dtype.itemsize
+        self.has_nan = False  #: whether any NaN was written by rows (nodata)
         self._file = open(self.path, "x+b")  # noqa: SIM115 - closed in close()
         self._file.truncate(self.tile_rows * self.tile_cols * self._tile_bytes)
 
@@ -77,6 +78,7 @@ class ScratchGrid:
         whole bands (or end at the grid's last row)."""
         t, n = self.tile, self.tile_cols
         stop = first + values.shape[0]
+        self.has_nan = self.has_nan or bool(np.isnan(values).any())
         if first % t or (stop % t and stop != self.height):
             raise ValueError(f"rows {first}:{stop} are not aligned to bands of {t} rows")
         for band in range(first // t, -(-stop // t)):

@@ -53,7 +53,7 @@ def _geotiff_codec(compression: str, predictor: int) -> dict:
 def _netcdf_codec(compression: str) -> dict:
     """netCDF4 ``createVariable`` options of a codec; NetCDF has no LERC, so lerc_zstd is zstd."""
     if compression == "deflate":
-        return {"zlib": True, "complevel": NETCDF_DEFLATE_LEVEL}
+        return {"zlib": True, "complevel": NETCDF_DEFLATE_LEVEL, "shuffle": True}
     if compression in ("zstd", "lerc_zstd"):
         return {"compression": "zstd", "complevel": ZSTD_LEVEL, "shuffle": True}
     return {}
