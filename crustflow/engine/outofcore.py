@@ -38,6 +38,7 @@ Strips then read their rows of the filtered load and the flag from the scratch g
 from __future__ import annotations
 
 import math
+import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -46,6 +47,7 @@ from scipy import fft as sp_fft
 
 from crustflow.engine.blocks import BlockReader, WholeGridLoad
 from crustflow.engine.fields import column_si
+from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import grid_geometry
 from crustflow.io.scratch import ScratchGrid, scratch_tile
 from crustflow.physics.column import (
@@ -74,6 +76,10 @@ __all__ = [
 #: Largest grid (cells) whose whole-grid load step runs in memory (about ten float64 copies of the
 #: grid: some 350 MB at this size); larger grids take the out-of-core path. Project choice.
 IN_MEMORY_CELLS = 1 << 22
+
+#: Scratch grids of float64 alive at once at most (filtered potential and reference load, then
+#: the long-wavelength gradient and both local averages of the thin-channel flag), for the disk check.
+SCRATCH_FILES = 6
 
 #: Rows searched on each side of a band of rows for the nearest finite cell when filling nodata
 #: before a filter, cells. Project choice: exact fill for nodata within 256 cells of data.
@@ -145,6 +151,7 @@ def out_of_core_load(
     scenario, folder = reader.scenario, Path(folder)
     tile = scratch_tile(reader.height, reader.width)
     load = ScratchLoad()
+    _check_disk(folder, reader.height, reader.width, tile, SCRATCH_FILES)
 
     def scratch(name: str, dtype="float64") -> ScratchGrid:
         grid = ScratchGrid(folder / f"{name}.bin", reader.height, reader.width, tile, dtype)
@@ -174,6 +181,19 @@ def out_of_core_load(
     except BaseException:
         load.close()
         raise
+
+
+def _check_disk(folder: Path, height: int, width: int, tile: int, files: int) -> None:
+    """Refuse to start when the scratch files cannot fit on the output's disk."""
+    need = files * 8 * (-(-height // tile) * tile) * (-(-width // tile) * tile)
+    free = shutil.disk_usage(folder).free
+    if free < need:
+        raise CrustflowInputError(
+            f"the whole-grid load step of a {height:,} x {width:,} grid needs about "
+            f"{need / 2**30:.1f} GB of scratch space next to the output (--out) and "
+            f"{free / 2**30:.1f} GB are free; free disk space there, or write the output to "
+            "another disk"
+        )
 
 
 def _drop(load: ScratchLoad, grid: ScratchGrid) -> None:
@@ -336,8 +356,8 @@ def _thin_channel(reader: BlockReader, phi: ScratchGrid, frame, stats: dict, scr
     average = gaussian_response(SHORT_WAVE_AVERAGING * wavelength)
     short_avg, long_avg = scratch("short_average"), scratch("long_average")
     filter_scratch(short, short_avg, frame, average)
-    long_max = filter_scratch(long, long_avg, frame, average)
     short.close()
+    long_max = filter_scratch(long, long_avg, frame, average)
     long.close()
     flagged = 0
     for r0 in phi.bands():

@@ -18,6 +18,7 @@ from scipy import ndimage
 import crustflow
 from crustflow.cli import main
 from crustflow.engine import outofcore, strips
+from crustflow.errors import CrustflowInputError
 from crustflow.geometry.grid import GridGeometry, grid_geometry
 from crustflow.io.scratch import ScratchGrid
 from crustflow.physics import flexure
@@ -191,3 +192,18 @@ def test_command_above_the_in_memory_limit_equals_api(tmp_path, monkeypatch, loa
             else:
                 scale = np.nanmax(np.abs(want)) or 1.0
                 np.testing.assert_allclose(got, want, rtol=2e-6, atol=1e-6 * scale, err_msg=name)
+
+
+def test_scratch_space_is_checked_before_the_step(tmp_path, monkeypatch):
+    # A disk without room for the scratch files is refused before anything is written.
+    path = _scenario(tmp_path, "")
+    monkeypatch.setattr(strips, "IN_MEMORY_CELLS", 100)
+
+    class Full:
+        free = 1000
+
+    monkeypatch.setattr(outofcore.shutil, "disk_usage", lambda folder: Full())
+    scenario = crustflow.load_scenario(path)
+    with outofcore.BlockReader(scenario) as reader:
+        with pytest.raises(CrustflowInputError, match=r"needs about .* GB of scratch space"):
+            outofcore.out_of_core_load(reader, tmp_path, filtered=False, thin_channel=True)
