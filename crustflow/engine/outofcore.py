@@ -100,10 +100,6 @@ class ScratchLoad:
     flagged: int | None = None  #: cells flagged
     _grids: list = field(default_factory=list)
 
-    @property
-    def thin_channel(self):  # the in-memory class's attribute: only whether the flag exists
-        return None if self.thin is None else True
-
     def rows(self, first: int, stop: int) -> tuple[np.ndarray | None, np.ndarray | None]:
         """Grid rows ``first:stop`` of the filtered load (Pa) and of the flag."""
         pressure = thin = None
