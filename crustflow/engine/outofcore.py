@@ -81,6 +81,10 @@ IN_MEMORY_CELLS = 1 << 22
 #: the long-wavelength gradient and both local averages of the thin-channel flag), for the disk check.
 SCRATCH_FILES = 6
 
+#: Cells computed at a time inside a band in the passes that evaluate the density column and the
+#: gradients (their temporaries are a few dozen arrays of this size). Project choice.
+PIECE_CELLS = 1 << 19
+
 #: Rows searched on each side of a band of rows for the nearest finite cell when filling nodata
 #: before a filter, cells. Project choice: exact fill for nodata within 256 cells of data.
 FILL_HALO_ROWS = 256
@@ -228,26 +232,45 @@ def _potential(reader: BlockReader, phi: ScratchGrid, reference: ScratchGrid | N
     h_max, total, count = -math.inf, 0.0, 0
     for r0 in phi.bands():
         r1 = min(reader.height, r0 + phi.tile)
-        block = reader.read(r0, r1, halo=0)
-        col = column_si(
-            block.elevation,
-            block.crust_thickness(p),
-            p,
-            load_setup=scenario.load,
-            cell=block.cell,
-        )
-        ref = p.rho_channel * p.gravity * col["z_top"]
-        values = np.where(col["valid"], col["p_top"] - ref, np.nan)
+        values = np.empty((r1 - r0, reader.width))
+        ref = np.empty_like(values)
+        for a, b in _pieces(r0, r1, reader.width):  # the column's temporaries: a piece at a time
+            # One halo row: a grid geometry needs two rows; the column is per cell, so cropping
+            # the halo off gives exactly the piece's own rows.
+            block = reader.read(a, b, halo=1)
+            col = column_si(
+                block.elevation,
+                block.crust_thickness(p),
+                p,
+                load_setup=scenario.load,
+                cell=block.cell,
+            )
+            col = {k: v[block.own] if np.ndim(v) == 2 else v for k, v in col.items()}
+            ref[a - r0 : b - r0] = p.rho_channel * p.gravity * col["z_top"]
+            values[a - r0 : b - r0] = np.where(
+                col["valid"], col["p_top"] - ref[a - r0 : b - r0], np.nan
+            )
+            h = np.asarray(col["h"], dtype=float)
+            finite = h[np.isfinite(h)]
+            if finite.size:
+                h_max = max(h_max, float(finite.max()))
         phi.write_rows(r0, values)
         if reference is not None:
-            reference.write_rows(r0, np.broadcast_to(ref, values.shape))
-        h = np.asarray(col["h"], dtype=float)
-        finite = h[np.isfinite(h)]
-        if finite.size:
-            h_max = max(h_max, float(finite.max()))
+            reference.write_rows(r0, ref)
         good = values[np.isfinite(values)]
         total, count = total + float(good.sum()), count + good.size
     return {"h_max": h_max, "mean": total / count if count else 0.0, "valid": count}
+
+
+def _pieces(r0: int, r1: int, width: int):
+    """Rows ``r0:r1`` in pieces of about :data:`PIECE_CELLS` cells, each at least two rows long
+    where the band has two (a grid geometry needs two rows)."""
+    rows = max(2, PIECE_CELLS // max(width, 1))
+    starts = list(range(r0, r1, rows))
+    if len(starts) > 1 and r1 - starts[-1] < 2:
+        starts.pop()  # a one-row tail joins the piece before it
+    for i, a in enumerate(starts):
+        yield a, starts[i + 1] if i + 1 < len(starts) else r1
 
 
 def filter_scratch(
@@ -340,12 +363,21 @@ def _thin_channel(reader: BlockReader, phi: ScratchGrid, frame, stats: dict, scr
     load_max = 0.0
     for r0 in phi.bands():
         r1 = min(n, r0 + t)
-        a, b = max(0, r0 - 1), min(n, r1 + 1)
-        p = phi.read_rows(a, b)
-        s, g = wavelength_gradients(p, p_long.read_rows(a, b), _geometry(reader, a, b))
-        short.write_rows(r0, s[r0 - a : r1 - a])
-        long.write_rows(r0, g[r0 - a : r1 - a])
-        own = np.abs(p[r0 - a : r1 - a])
+        first, stop = max(0, r0 - 1), min(n, r1 + 1)  # one halo row for the gradients
+        p, pl = phi.read_rows(first, stop), p_long.read_rows(first, stop)
+        s_band, g_band = np.empty((r1 - r0, phi.width)), np.empty((r1 - r0, phi.width))
+        for a, b in _pieces(r0, r1, phi.width):
+            lo, hi = max(0, a - 1), min(n, b + 1)
+            s, g = wavelength_gradients(
+                p[lo - first : hi - first], pl[lo - first : hi - first], _geometry(reader, lo, hi)
+            )
+            s_band[a - r0 : b - r0], g_band[a - r0 : b - r0] = (
+                s[a - lo : b - lo],
+                g[a - lo : b - lo],
+            )
+        short.write_rows(r0, s_band)
+        long.write_rows(r0, g_band)
+        own = np.abs(p[r0 - first : r1 - first])
         if np.isfinite(own).any():
             load_max = max(load_max, float(np.nanmax(own)))
     p_long.close()

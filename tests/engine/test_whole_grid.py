@@ -150,8 +150,8 @@ def test_far_nodata_takes_the_fallback_and_stays_nodata(tmp_path):
     np.testing.assert_allclose(ours[40:], 5.0, rtol=1e-12)
 
 
-def _scenario(tmp_path, load_table: str, nodata: bool = False):
-    topo = bump(shape=(41, 37), cell=5e3, radius=60e3)
+def _scenario(tmp_path, load_table: str, nodata: bool = False, shape=(41, 37)):
+    topo = bump(shape=shape, cell=5e3, radius=60e3)
     rng = np.random.default_rng(4)
     topo = topo + 40.0 * rng.normal(size=topo.shape)  # short-wavelength roughness: some flags
     if nodata:
@@ -163,19 +163,23 @@ def _scenario(tmp_path, load_table: str, nodata: bool = False):
 
 
 @pytest.mark.parametrize(
-    "load_table, nodata",
+    "load_table, nodata, shape",
     [
-        ('[load]\nsmoothing = "8 km"\nelastic_thickness = "10 km"\n', True),
-        ("", False),
+        ('[load]\nsmoothing = "8 km"\nelastic_thickness = "10 km"\n', True, (41, 37)),
+        ("", False, (41, 37)),
+        ('[load]\nsmoothing = "8 km"\n', False, (33, 20)),  # a last band of one row
     ],
 )
-def test_command_above_the_in_memory_limit_equals_api(tmp_path, monkeypatch, load_table, nodata):
+def test_command_above_the_in_memory_limit_equals_api(
+    tmp_path, monkeypatch, load_table, nodata, shape
+):
     # A grid above a lowered in-memory limit runs the filters and writes thin_channel_warning out
     # of core (nothing refused or dropped); the files equal crustflow.solve (whole grid in memory)
     # to float32 rounding (the filtered load agrees to 1e-12, see the test above), the flag exactly.
-    path = _scenario(tmp_path, load_table, nodata)
+    path = _scenario(tmp_path, load_table, nodata, shape)
     monkeypatch.setattr(strips, "IN_MEMORY_CELLS", 100)
     monkeypatch.setattr(outofcore, "scratch_tile", lambda h, w: 16)
+    monkeypatch.setattr(outofcore, "PIECE_CELLS", 5 * shape[1])  # pieces of 5 rows in the bands
     out = tmp_path / "out"
     assert main(["run", str(path), "--out", str(out), "--quiet", "--strip-rows", "7"]) == 0
     assert not list(out.glob(".scratch-*"))  # scratch files removed with their folder
