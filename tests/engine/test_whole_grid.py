@@ -211,3 +211,20 @@ def test_scratch_space_is_checked_before_the_step(tmp_path, monkeypatch):
     with outofcore.BlockReader(scenario) as reader:
         with pytest.raises(CrustflowInputError, match=r"needs about .* GB of scratch space"):
             outofcore.out_of_core_load(reader, tmp_path, filtered=False, thin_channel=True)
+
+
+def test_local_cluster_gets_the_rows_it_needs(tmp_path, monkeypatch):
+    # dask.distributed LocalCluster with 2 worker processes: each strip's rows of the out-of-core
+    # load travel to the workers in memory (ScratchLoad.part); files identical to the serial run.
+    path = _scenario(tmp_path, '[load]\nsmoothing = "8 km"\n', True)
+    monkeypatch.setattr(strips, "IN_MEMORY_CELLS", 100)
+    monkeypatch.setattr(outofcore, "scratch_tile", lambda h, w: 16)
+    args = ["run", str(path), "--quiet", "--strip-rows", "7", "--out"]
+    assert main([*args, str(tmp_path / "a")]) == 0
+    assert main([*args, str(tmp_path / "b"), "--workers", "2"]) == 0
+    with (
+        xr.open_dataset(tmp_path / "a" / "fields.nc") as a,
+        xr.open_dataset(tmp_path / "b" / "fields.nc") as b,
+    ):
+        for name in a.data_vars:
+            np.testing.assert_array_equal(a[name].values, b[name].values, err_msg=name)
