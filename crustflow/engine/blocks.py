@@ -96,6 +96,10 @@ class WholeGridLoad:
         """Only grid rows ``first:stop`` (what a strip computed elsewhere needs)."""
         return WholeGridLoad(*self.rows(first, stop), offset=first)
 
+    def flagged_cells(self) -> int | None:
+        """Cells with the thin-channel warning, or None without the flag."""
+        return None if self.thin_channel is None else int(np.nansum(self.thin_channel))
+
 
 class BlockReader:
     """Reads blocks of rows of a scenario's grids.

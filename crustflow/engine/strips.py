@@ -4,7 +4,10 @@ The grid is processed in strips of rows, each read by the one block reader
 (:mod:`crustflow.engine.blocks`: halo rows, SI parameter grids, geometry) and computed with
 :func:`~crustflow.engine.blocks.block_fields`, cropped and written into every output file; the
 result is identical, bit for bit, to the whole-grid result. Peak memory is set by the strip size,
-not the grid size, except for the whole-grid load step (filters, thin-channel flag).
+not the grid size. The whole-grid load step (filters, thin-channel flag) runs in memory on small
+grids and out of core above :data:`crustflow.engine.outofcore.IN_MEMORY_CELLS` cells
+(:mod:`crustflow.engine.outofcore`, scratch files in a temporary folder inside ``folder``), so
+memory stays bounded at any size.
 
 A run is: a :class:`RunPlan` (variables, strip height), the whole-grid pre-step, the loop over
 strips (here or on a dask.distributed cluster), the :class:`_Sinks` that write NetCDF and GeoTIFF
@@ -14,6 +17,8 @@ in a background thread, and the :class:`_Summary` of ranges and counts for the t
 from __future__ import annotations
 
 import json
+import shutil
+import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -23,10 +28,10 @@ import numpy as np
 from crustflow.engine.blocks import HALO_ROWS, BlockReader, WholeGridLoad, block_fields
 from crustflow.engine.checks import InputChecks
 from crustflow.engine.fields import CELL_EXTRAS
+from crustflow.engine.outofcore import IN_MEMORY_CELLS, out_of_core_load
 from crustflow.engine.progress import Progress
-from crustflow.errors import CrustflowInputError
 from crustflow.io.grids import provenance
-from crustflow.io.writers import GeotiffWriter, NetcdfWriter, netcdf_attrs
+from crustflow.io.writers import GeotiffWriter, NetcdfWriter, check_compression, netcdf_attrs
 from crustflow.variables import CAUTION, VARIABLES, to_practical, variable_attrs
 
 __all__ = ["HALO_ROWS", "CELLS_PER_STRIP", "strip_rows_for", "run_strips"]
@@ -38,10 +43,6 @@ CELLS_PER_STRIP = 1 << 19
 
 #: Rows of one output GeoTIFF tile (crustflow.io.writers.GeotiffWriter writes 256 x 256 tiles).
 TILE_ROWS = 256
-
-#: Largest grid (cells) for the whole-grid steps: load filters and the thin-channel warning hold
-#: about ten float64 copies of the grid (8 GB at this size on a 24 GB machine).
-WHOLE_GRID_CELLS = 100_000_000
 
 #: Variables the volume budgets and arrow layers read.
 BUDGET_VARIABLES = (
@@ -122,37 +123,53 @@ def run_strips(
     note("open grids")
     import rasterio
 
+    check_compression(scenario.compression, scenario.formats)
     names = list(scenario.variables or VARIABLES)
     cache = _gdal_cache_bytes(len(names) + len(BUDGET_VARIABLES), _width_of(scenario))
-    with rasterio.Env(GDAL_CACHEMAX=cache), BlockReader(scenario) as reader:
-        plan = plan_run(scenario, reader.height, reader.width, strip_rows, budget_fields)
-        whole = _whole_grid_step(reader, plan, note)
-        bar = Progress(
-            plan.height,
-            unit=" rows",
-            desc="compute and write",
-            bar=progress and plan.height > plan.rows,
-        )
-        with bar, _Sinks(scenario, reader, plan, Path(folder), budget_fields, bar.update) as sinks:
-            note("compute and write")
-            summary = _Summary(plan, reader)
-            checks = InputChecks(reader.sources, scenario.parameters.channel_thickness)
-            for result in _strip_results(reader, plan, whole, client):
-                checks.merge(result["checks"])
-                if checks.failed:
-                    break
-                sinks.write_strip(result["r0"], result["out"])
-                summary.add(result["r0"], result["out"])
-            sinks.complete()
-            checks.finish()  # on early exit these stats are partial: enough to name the cause
-        return summary.result(
-            written=sinks.written,
-            provenance=provenance(reader.sources),
-            excluded=checks.column.excluded,
-            whole=whole,
-            budget_fields=sinks.budget_path,
-            title=scenario.title,
-        )
+    scratch = Path(tempfile.mkdtemp(prefix=".scratch-", dir=folder))
+    whole = WholeGridLoad()
+    try:
+        with rasterio.Env(GDAL_CACHEMAX=cache), BlockReader(scenario) as reader:
+            plan = plan_run(scenario, reader.height, reader.width, strip_rows, budget_fields)
+            whole = _whole_grid_step(reader, plan, note, scratch)
+            return _loop(
+                scenario, reader, plan, whole, Path(folder), budget_fields, note, progress, client
+            )
+    finally:
+        if hasattr(whole, "close"):
+            whole.close()
+        shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _loop(scenario, reader, plan, whole, folder, budget_fields, note, progress, client) -> dict:
+    """Compute, write and summarise the strips (see :func:`run_strips`); the progress bar counts
+    rows once they are written."""
+    bar = Progress(
+        plan.height,
+        unit=" rows",
+        desc="compute and write",
+        bar=progress and plan.height > plan.rows,
+    )
+    with bar, _Sinks(scenario, reader, plan, Path(folder), budget_fields, bar.update) as sinks:
+        note("compute and write")
+        summary = _Summary(plan, reader)
+        checks = InputChecks(reader.sources, scenario.parameters.channel_thickness)
+        for result in _strip_results(reader, plan, whole, client):
+            checks.merge(result["checks"])
+            if checks.failed:
+                break
+            sinks.write_strip(result["r0"], result["out"])
+            summary.add(result["r0"], result["out"])
+        sinks.complete()
+        checks.finish()  # on early exit these stats are partial: enough to name the cause
+    return summary.result(
+        written=sinks.written,
+        provenance=provenance(reader.sources),
+        excluded=checks.column.excluded,
+        whole=whole,
+        budget_fields=sinks.budget_path,
+        title=scenario.title,
+    )
 
 
 def _width_of(scenario) -> int:
@@ -186,15 +203,10 @@ class RunPlan:
 
 
 def plan_run(scenario, height: int, width: int, strip_rows=None, budget_fields=None) -> RunPlan:
-    """The variables a run computes and writes and its strip height; refuses whole-grid steps
-    on grids larger than :data:`WHOLE_GRID_CELLS`."""
+    """The variables a run computes and writes and its strip height (every variable at any grid
+    size: the whole-grid steps run out of core on large grids)."""
     names = list(scenario.variables or VARIABLES)
-    skipped = []
-    if height * width > WHOLE_GRID_CELLS:
-        _refuse_whole_grid_steps(scenario, height * width)
-        if "thin_channel_warning" in names:
-            names.remove("thin_channel_warning")
-            skipped.append("thin_channel_warning")
+    skipped: list[str] = []
     make_figure = "figure" in scenario.formats
     wanted = set(names) | set(FIGURE_VARIABLES if make_figure else ())
     if budget_fields is not None:
@@ -205,22 +217,6 @@ def plan_run(scenario, height: int, width: int, strip_rows=None, budget_fields=N
     return RunPlan(
         names, wanted, rows, height, width, make_figure, scenario.load.filtered, skipped, summary
     )
-
-
-def _refuse_whole_grid_steps(scenario, cells: int) -> None:
-    # Whole-grid steps hold several float64 copies of the grid in memory.
-    if scenario.load.filtered:
-        raise CrustflowInputError(
-            f"[load] smoothing / elastic_thickness act on the whole grid, and this grid "
-            f"has {cells:,} cells (more than {WHOLE_GRID_CELLS:,}); resample the "
-            "grids coarser for a filtered run, or remove the [load] filters"
-        )
-    if scenario.variables and "thin_channel_warning" in scenario.variables:
-        raise CrustflowInputError(
-            f"thin_channel_warning needs the whole grid in memory and this grid has "
-            f"{cells:,} cells (more than {WHOLE_GRID_CELLS:,}); remove it "
-            "from [output] variables or resample the grids coarser"
-        )
 
 
 #: Variables the figures draw (flux map, rates map), plus the input elevation for their contours,
@@ -238,13 +234,16 @@ FIGURE_VARIABLES = (
 ELEVATION_ATTRS = {"long_name": "surface elevation above sea level", "units": "m"}
 
 
-def _whole_grid_step(reader: BlockReader, plan: RunPlan, note) -> WholeGridLoad:
-    """The load filters and the thin-channel flag, over the whole grid, before the strips."""
+def _whole_grid_step(reader: BlockReader, plan: RunPlan, note, scratch: Path):
+    """The load filters and the thin-channel flag, over the whole grid, before the strips: in
+    memory up to :data:`IN_MEMORY_CELLS` cells, out of core (files in ``scratch``) above."""
     thin = "thin_channel_warning" in plan.wanted
     if not (plan.filtered or thin):
         return WholeGridLoad()
     note("whole-grid load")
-    return reader.whole_grid_load(filtered=plan.filtered, thin_channel=thin)
+    if plan.height * plan.width <= IN_MEMORY_CELLS:
+        return reader.whole_grid_load(filtered=plan.filtered, thin_channel=thin)
+    return out_of_core_load(reader, scratch, filtered=plan.filtered, thin_channel=thin)
 
 
 def _strip_results(reader: BlockReader, plan: RunPlan, whole: WholeGridLoad, client):
@@ -316,8 +315,10 @@ def compute_strip(
 
 
 class _Sinks:
-    """The run's output files (NetCDF, GeoTIFF, the budgets' side file), written in a background
-    thread strip by strip; closed on exit, also on errors."""
+    """The run's output files (NetCDF, GeoTIFF, the budgets' side file), written strip by strip in
+    two background threads, one for the NetCDF files and one for the GeoTIFFs (netCDF4 and GDAL
+    release the GIL while compressing, so the two codecs run on both cores); closed on exit, also
+    on errors."""
 
     def __init__(
         self, scenario, reader: BlockReader, plan: RunPlan, folder: Path, budget_fields, on_written
@@ -327,6 +328,7 @@ class _Sinks:
         self.nc = self.side = self.tifs = None
         self.budget_path = None
         self._grid = (reader.x, reader.y, reader.crs, reader.transform)
+        self._codec = scenario.compression
         attrs = netcdf_attrs(
             scenario.title, json.dumps(scenario.written), dict(vars(scenario.parameters))
         )
@@ -342,12 +344,14 @@ class _Sinks:
         if "geotiff" in scenario.formats:
             self.tifs = {n: self._geotiff(folder / f"{n}.tif", n) for n in plan.names}
             self.written += [f"{n}.tif" for n in plan.names]
-        self._writer = _BackgroundWriter(self._write)
+        self._writers = [_BackgroundWriter(self._write_netcdf), _BackgroundWriter(self._write_tifs)]
 
     def _netcdf(self, path: Path, names, attrs) -> NetcdfWriter:
         x, y, crs, t = self._grid
         attrs_of = {n: variable_attrs(n) for n in names}
-        writer = NetcdfWriter(path, x, y, crs, t, attrs_of, attrs, chunk_rows=self.plan.rows)
+        writer = NetcdfWriter(
+            path, x, y, crs, t, attrs_of, attrs, chunk_rows=self.plan.rows, compression=self._codec
+        )
         self._files.append(writer)
         return writer
 
@@ -360,26 +364,31 @@ class _Sinks:
             height=self.plan.height,
             width=self.plan.width,
             attrs=dict(variable_attrs(name), caution=CAUTION),
+            compression=self._codec,
         )
         self._files.append(writer)
         return writer
 
-    def _write(self, r0: int, out: dict) -> None:
+    def _write_netcdf(self, r0: int, out: dict) -> None:
         if self.nc is not None:
             self.nc.write_rows(r0, {n: out[n] for n in self.plan.names})
         if self.side is not None:
             self.side.write_rows(r0, {n: out[n] for n in BUDGET_VARIABLES})
+
+    def _write_tifs(self, r0: int, out: dict) -> None:
         for n, tif in (self.tifs or {}).items():
             tif.write_rows(r0, out[n])
         self._on_written(next(iter(out.values())).shape[0])  # rows now on disk
 
     def write_strip(self, r0: int, out: dict) -> None:
-        """Queue a strip's rows for writing."""
-        self._writer.put(r0, out)
+        """Queue a strip's rows for writing (the arrays are only read, by both threads)."""
+        for writer in self._writers:
+            writer.put(r0, out)
 
     def complete(self) -> None:
-        """Write what is queued and close every file (raises the writer's error, if any)."""
-        self._writer.finish()
+        """Write what is queued and close every file (raises a writer's error, if any)."""
+        for writer in self._writers:
+            writer.finish()
         self._close()
 
     def _close(self) -> None:
@@ -391,7 +400,8 @@ class _Sinks:
         return self
 
     def __exit__(self, *exc) -> None:
-        self._writer.finish(raise_errors=False)
+        for writer in self._writers:
+            writer.finish(raise_errors=False)
         self._close()
 
 
@@ -431,7 +441,7 @@ class _Summary:
         if plan.make_figure:
             x, y, crs = self.grid
             figure = _figure_dataset(self.figure_rows, x, y, self.step, crs, title)
-        thin = whole.thin_channel
+        thin = whole.flagged_cells()
         return {
             "written": written,
             "provenance": provenance,
@@ -441,7 +451,7 @@ class _Summary:
             "figure": figure,
             "unconverged_cells": self.counts["unconverged"],
             "excluded_cells": excluded,
-            "thin_channel_cells": None if thin is None else int(np.nansum(thin)),
+            "thin_channel_cells": thin,
             "budget_fields": budget_fields,
             "skipped_variables": plan.skipped,
             "shape": [plan.height, plan.width],

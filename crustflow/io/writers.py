@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from crustflow._version import __version__
+from crustflow.errors import CrustflowInputError
 from crustflow.io.colour_ramps import flag_categories
 from crustflow.io.styles import BandStatistics, finish_geotiff
 from crustflow.variables import CAUTION
@@ -26,7 +27,109 @@ __all__ = [
     "write_geotiff",
     "NetcdfWriter",
     "GeotiffWriter",
+    "check_compression",
 ]
+
+#: DEFLATE level of the GeoTIFFs (zlib levels 1-9), dimensionless. Project choice: level 1 writes
+#: about twice as fast as GDAL's default 6 for a few per cent larger files (benchmarks/RESULTS.md).
+GEOTIFF_DEFLATE_LEVEL = 1
+
+#: DEFLATE level of the NetCDF variables (zlib), dimensionless. Project choice, as above.
+NETCDF_DEFLATE_LEVEL = 1
+
+#: ZSTD level of both formats, dimensionless. Project choice: level 1 is the fastest; higher
+#: levels gain little on float fields (benchmarks/RESULTS.md).
+ZSTD_LEVEL = 1
+
+
+def _geotiff_codec(compression: str, predictor: int) -> dict:
+    """rasterio creation options of a codec (lossless in every case)."""
+    if compression == "deflate":
+        return {"compress": "deflate", "predictor": predictor, "zlevel": GEOTIFF_DEFLATE_LEVEL}
+    if compression == "zstd":
+        return {"compress": "zstd", "predictor": predictor, "zstd_level": ZSTD_LEVEL}
+    if compression == "lerc_zstd":  # LERC with a zero error bound is lossless
+        return {"compress": "lerc_zstd", "max_z_error": 0, "zstd_level": ZSTD_LEVEL}
+    return {}
+
+
+def _netcdf_codec(compression: str) -> dict:
+    """netCDF4 ``createVariable`` options of a codec; NetCDF has no LERC, so lerc_zstd is zstd."""
+    if compression == "deflate":
+        return {"zlib": True, "complevel": NETCDF_DEFLATE_LEVEL, "shuffle": True}
+    if compression in ("zstd", "lerc_zstd"):
+        return {"compression": "zstd", "complevel": ZSTD_LEVEL, "shuffle": True}
+    return {}
+
+
+def check_compression(compression: str, formats) -> None:
+    """Check that this GDAL and netCDF4 build can write ``compression`` in ``formats``.
+
+    Raises
+    ------
+    CrustflowInputError
+        Naming the library that lacks the codec and the fix.
+    """
+    if compression in ("deflate", "none"):
+        return
+    if "geotiff" in formats and not _gdal_writes(compression):
+        raise CrustflowInputError(
+            f"output.compression {compression!r}: this GDAL build cannot write it in GeoTIFF; "
+            'use "deflate", or install a GDAL (rasterio wheel) built with ZSTD and LERC'
+        )
+    if "netcdf" in formats and not _netcdf_writes_zstd():
+        raise CrustflowInputError(
+            f"output.compression {compression!r}: this netCDF4 build has no ZSTD filter "
+            '(HDF5 plugin); use "deflate", or install netCDF4 >= 1.6 wheels (which ship the '
+            "plugin) or set HDF5_PLUGIN_PATH to a folder holding it"
+        )
+
+
+def _gdal_writes(compression: str) -> bool:
+    import rasterio
+    from rasterio.errors import RasterioError
+
+    path = f"/vsimem/crustflow-codec-{compression}.tif"
+    try:
+        with rasterio.open(
+            path,
+            "w",
+            driver="GTiff",
+            width=16,
+            height=16,
+            count=1,
+            dtype="float32",
+            tiled=True,
+            blockxsize=16,
+            blockysize=16,
+            **_geotiff_codec(compression, 3),
+        ) as dst:
+            dst.write(np.zeros((1, 16, 16), "float32"))
+        return True
+    except (RasterioError, ValueError):
+        return False
+    finally:
+        from rasterio.shutil import delete
+
+        try:
+            delete(path)
+        except (RasterioError, OSError):
+            pass
+
+
+def _netcdf_writes_zstd() -> bool:
+    import netCDF4
+
+    if not getattr(netCDF4, "__has_zstandard_support__", False):
+        return False
+    try:
+        with netCDF4.Dataset("crustflow-codec.nc", "w", diskless=True, persist=False) as nc:
+            nc.createDimension("x", 16)
+            var = nc.createVariable("v", "f4", ("x",), **_netcdf_codec("zstd"))
+            var[:] = np.zeros(16, "float32")
+        return True
+    except (RuntimeError, ValueError, OSError):
+        return False
 
 
 def finite_float32(values: np.ndarray, name: str) -> np.ndarray:
@@ -86,10 +189,22 @@ class NetcdfWriter:
         Global attributes.
     chunk_rows : int
         Rows written at a time; the NetCDF chunks are this tall (16 to 256 rows).
+    compression : str
+        ``"deflate"`` (zlib), ``"zstd"`` or ``"lerc_zstd"`` (both ZSTD with byte shuffle: NetCDF
+        has no LERC) or ``"none"``.
     """
 
     def __init__(
-        self, path, x, y, crs, transform, variables: dict, attrs: dict, chunk_rows: int = 256
+        self,
+        path,
+        x,
+        y,
+        crs,
+        transform,
+        variables: dict,
+        attrs: dict,
+        chunk_rows: int = 256,
+        compression: str = "deflate",
     ) -> None:
         import netCDF4
 
@@ -118,20 +233,18 @@ class NetcdfWriter:
                     name,
                     "i1",
                     ("y", "x"),
-                    zlib=True,
-                    complevel=4,
                     chunksizes=chunks,
                     fill_value=np.int8(-1),
+                    **_netcdf_codec(compression),
                 )
             else:
                 var = nc.createVariable(
                     name,
                     "f4",
                     ("y", "x"),
-                    zlib=True,
-                    complevel=4,
                     chunksizes=chunks,
                     fill_value=np.float32(np.nan),
+                    **_netcdf_codec(compression),
                 )
             var.set_auto_maskandscale(False)
             var.set_var_chunk_cache(
@@ -155,17 +268,29 @@ class NetcdfWriter:
 
 
 class GeotiffWriter:
-    """Writes one variable as a tiled, DEFLATE-compressed single-band GeoTIFF, strip by strip.
+    """Writes one variable as a tiled, compressed single-band GeoTIFF, strip by strip.
 
     Float variables are float32 with NaN nodata; flag variables are uint8 with nodata 255, with a
     colour table and category names. The band description is the variable's ``long_name`` and the
     band unit its ``units``. On :meth:`close` the file gets statistics, overviews and a ``.qml``
     style sidecar (:func:`crustflow.io.styles.finish_geotiff`); ``variable`` (default: the file's
-    base name) picks its colour ramp.
+    base name) picks its colour ramp. ``compression``: ``"deflate"`` (default, with the
+    floating-point or horizontal predictor), ``"zstd"`` (same predictors), ``"lerc_zstd"`` (LERC
+    with a zero error bound, lossless) or ``"none"``; tiles are compressed on all cores (GDAL
+    ``NUM_THREADS=ALL_CPUS``).
     """
 
     def __init__(
-        self, path, *, crs, transform, height: int, width: int, attrs: dict, variable=None
+        self,
+        path,
+        *,
+        crs,
+        transform,
+        height: int,
+        width: int,
+        attrs: dict,
+        variable=None,
+        compression: str = "deflate",
     ) -> None:
         import rasterio
 
@@ -189,12 +314,11 @@ class GeotiffWriter:
             crs=crs,
             transform=transform,
             nodata=nodata,
-            compress="deflate",
-            predictor=predictor,
             tiled=True,
             blockxsize=block,
             blockysize=block,
             num_threads="ALL_CPUS",
+            **_geotiff_codec(compression, predictor),
         )
         self.dst.set_band_description(1, attrs.get("long_name", ""))
         self.dst.units = (attrs.get("units", ""),)

@@ -40,6 +40,9 @@ __all__ = [
     "channel_geometry",
     "driving_gradient_general",
     "short_wavelength_mask",
+    "short_wavelength_limit",
+    "wavelength_gradients",
+    "short_wavelength_flag",
 ]
 
 #: Channel placements :func:`channel_geometry` accepts (the scenario's ``channel.placement``).
@@ -403,6 +406,27 @@ def short_wavelength_mask(
     and consequences of flow in the lower crust. Journal of Geophysical Research 105(B5),
     11029-11046 (page range from memory).
     """
+    wavelength = short_wavelength_limit(channel_thickness, factor)
+    p = np.array(load_pressure, dtype=float)
+    if not np.isfinite(p).any():
+        return np.zeros(p.shape, dtype=bool)
+    p_long = gaussian_smoothing(p, geometry, sigma=wavelength / (2.0 * math.pi))
+    short, long = wavelength_gradients(p, p_long, geometry)
+    # Local averages over about one wavelength L: the ratio at a single cell is meaningless where
+    # the long-wavelength gradient passes through zero (at the load's crests and troughs).
+    average = SHORT_WAVE_AVERAGING * wavelength
+    short = gaussian_smoothing(short, geometry, sigma=average)
+    long = gaussian_smoothing(long, geometry, sigma=average)
+    with np.errstate(invalid="ignore"):
+        long_max, p_max = float(np.nanmax(long)), float(np.nanmax(np.abs(p)))
+    return short_wavelength_flag(
+        short, long, long_max=long_max, load_max=p_max, wavelength=wavelength
+    ) & np.isfinite(p)
+
+
+def short_wavelength_limit(channel_thickness, factor: float = THIN_CHANNEL_FACTOR) -> float:
+    """The shortest acceptable load wavelength ``L = factor max(h)`` of
+    :func:`short_wavelength_mask`, m (inputs checked as there)."""
     if not (math.isfinite(factor) and factor > 0):
         raise CrustflowInputError(
             f"factor is {factor!r}; give the shortest acceptable wavelength in channel "
@@ -414,23 +438,28 @@ def short_wavelength_mask(
         raise CrustflowInputError(
             "channel thickness has no positive value; give the channel thickness in m"
         )
-    p = np.array(load_pressure, dtype=float)
-    if not np.isfinite(p).any():
-        return np.zeros(p.shape, dtype=bool)
-    wavelength = factor * float(finite.max())
-    p_long = gaussian_smoothing(p, geometry, sigma=wavelength / (2.0 * math.pi))
+    return factor * float(finite.max())
+
+
+def wavelength_gradients(p, p_long, geometry: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
+    """Magnitudes of the gradients of the short and long parts of a load,
+    ``|grad(P - P_long)|`` and ``|grad P_long|``, Pa/m (see :func:`short_wavelength_mask`)."""
     short = np.hypot(*gradient(p - p_long, geometry))
     long = np.hypot(*gradient(p_long, geometry))
-    # Local averages over about one wavelength L: the ratio at a single cell is meaningless where
-    # the long-wavelength gradient passes through zero (at the load's crests and troughs).
-    average = SHORT_WAVE_AVERAGING * wavelength
-    short = gaussian_smoothing(short, geometry, sigma=average)
-    long = gaussian_smoothing(long, geometry, sigma=average)
+    return short, long
+
+
+def short_wavelength_flag(short, long, *, long_max: float, load_max: float, wavelength: float):
+    """The comparison of :func:`short_wavelength_mask` on locally averaged gradient magnitudes.
+
+    ``short > (e^(1/2) - 1) long + 1e-6 max(long_max, load_max / wavelength)``, with ``long_max``
+    the largest averaged long-wavelength gradient over the whole grid (Pa/m) and ``load_max`` the
+    largest ``|P|`` (Pa); both are whole-grid maxima, so a piece of the grid needs them passed in.
+    """
     with np.errstate(invalid="ignore"):
-        scale = max(float(np.nanmax(long)), float(np.nanmax(np.abs(p))) / wavelength)
+        scale = max(long_max, load_max / wavelength)
         floor = SHORT_WAVE_FLOOR * scale
-        flagged = short > SHORT_WAVE_RATIO * long + floor
-    return flagged & np.isfinite(p)
+        return short > SHORT_WAVE_RATIO * long + floor
 
 
 # ----------------------------------------------------------------------------------------------

@@ -55,6 +55,11 @@ __all__ = [
     "flexural_filter",
     "gaussian_smoothing",
     "wavenumber_filter",
+    "gaussian_response",
+    "elastic_lid_response",
+    "dct_wavenumbers",
+    "fill_nearest",
+    "report_frame",
 ]
 
 logger = logging.getLogger(__name__)
@@ -337,6 +342,32 @@ def flexural_filter(
     Turcotte, D. L. & Schubert, G. (2002). Geodynamics, 2nd ed. Cambridge University Press,
     chapter 3.
     """
+    response = elastic_lid_response(
+        elastic_thickness=elastic_thickness,
+        density_contrast=density_contrast,
+        gravity=gravity,
+        youngs_modulus=youngs_modulus,
+        poissons_ratio=poissons_ratio,
+    )
+    if response is None:
+        return _checked_grid(load, geometry, "load").copy()
+    return wavenumber_filter(load, geometry, response)
+
+
+def elastic_lid_response(
+    *,
+    elastic_thickness: float,
+    density_contrast: float,
+    gravity: float,
+    youngs_modulus: float = YOUNGS_MODULUS,
+    poissons_ratio: float = POISSONS_RATIO,
+) -> Callable[[np.ndarray], np.ndarray] | None:
+    """The response of :func:`flexural_filter` as a function of ``k^2``, or None for Te = 0.
+
+    Parameters as for :func:`flexural_filter` (checked here). The returned callable maps ``k^2``
+    (rad^2/m^2) to ``1 / (1 + D k^4 / (drho g))`` (Turcotte & Schubert 2002, chapter 3); the
+    in-memory filter and the out-of-core one (:mod:`crustflow.engine.outofcore`) both use it.
+    """
     te = _checked_elastic_thickness(elastic_thickness)
     if np.ndim(te) != 0:
         raise CrustflowInputError(
@@ -345,9 +376,9 @@ def flexural_filter(
     rigidity = flexural_rigidity(float(te), youngs_modulus, poissons_ratio)
     _checked_restoring(density_contrast, gravity)
     if rigidity == 0.0:
-        return _checked_grid(load, geometry, "load").copy()
+        return None
     flex = rigidity / (density_contrast * gravity)
-    return wavenumber_filter(load, geometry, lambda k2: 1.0 / (1.0 + flex * k2 * k2))
+    return lambda k2: 1.0 / (1.0 + flex * k2 * k2)
 
 
 def gaussian_smoothing(field, geometry: GridGeometry, *, sigma: float) -> np.ndarray:
@@ -380,15 +411,35 @@ def gaussian_smoothing(field, geometry: GridGeometry, *, sigma: float) -> np.nda
     Bracewell, R. N. (2000). The Fourier Transform and Its Applications, 3rd ed. McGraw-Hill
     (Fourier transform of a Gaussian; from memory).
     """
+    response = gaussian_response(sigma)
+    if response is None:
+        return _checked_grid(field, geometry, "field").copy()
+    return wavenumber_filter(field, geometry, response)
+
+
+def gaussian_response(sigma: float) -> Callable[[np.ndarray], np.ndarray] | None:
+    """The response of :func:`gaussian_smoothing` as a function of ``k^2``, or None for sigma = 0.
+
+    Parameters
+    ----------
+    sigma : float
+        Standard deviation of the Gaussian, m, >= 0 (checked here).
+
+    Returns
+    -------
+    callable or None
+        Maps ``k^2`` (rad^2/m^2) to ``exp(-k^2 sigma^2 / 2)`` (Bracewell 2000, from memory); the
+        in-memory filter and the out-of-core one (:mod:`crustflow.engine.outofcore`) both use it.
+    """
     if not (np.ndim(sigma) == 0 and math.isfinite(sigma) and sigma >= 0):
         raise CrustflowInputError(
             f"load.smoothing is {sigma!r}; give the Gaussian's standard deviation as a length "
             '>= 0, e.g. "40 km"'
         )
     if sigma == 0:
-        return _checked_grid(field, geometry, "field").copy()
+        return None
     half_s2 = 0.5 * float(sigma) ** 2
-    return wavenumber_filter(field, geometry, lambda k2: np.exp(-half_s2 * k2))
+    return lambda k2: np.exp(-half_s2 * k2)
 
 
 def wavenumber_filter(
@@ -427,12 +478,11 @@ def wavenumber_filter(
     if nodata.all():
         return values.copy()
     frame = local_frame(geometry)
-    _report_frame(frame)
-    filled = _fill_nearest(values, nodata) if nodata.any() else values
+    report_frame(frame)
+    filled = fill_nearest(values, nodata) if nodata.any() else values
     nrow, ncol = values.shape
     coef = sp_fft.dctn(filled, type=2, norm="ortho")
-    k_east = np.pi * np.arange(ncol) / (ncol * frame.dx)
-    k_north = np.pi * np.arange(nrow) / (nrow * frame.dy)
+    k_north, k_east = dct_wavenumbers(nrow, ncol, frame)
     coef *= response(k_north[:, None] ** 2 + k_east[None, :] ** 2)
     out = sp_fft.idctn(coef, type=2, norm="ortho")
     np.copyto(out, values, where=nodata)
@@ -464,7 +514,16 @@ def _projected_frame(geometry: GridGeometry) -> LocalFrame:
     return LocalFrame(abs(geometry.dx) * east0, abs(geometry.dy) * north0, None, error)
 
 
-def _report_frame(frame: LocalFrame) -> None:
+def dct_wavenumbers(nrow: int, ncol: int, frame: LocalFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Wavenumbers (rad/m) of the DCT-II coefficients along rows (north) and columns (east):
+    ``k_m = pi m / (n d)`` (Makhoul 1980)."""
+    k_east = np.pi * np.arange(ncol) / (ncol * frame.dx)
+    k_north = np.pi * np.arange(nrow) / (nrow * frame.dy)
+    return k_north, k_east
+
+
+def report_frame(frame: LocalFrame) -> None:
+    """Log the local frame's error; warn above :data:`LOCAL_FRAME_WARNING`."""
     if frame.central_latitude is None:
         _report_projected_frame(frame)
         return
@@ -555,7 +614,7 @@ def _checked_restoring(density_contrast: float, gravity: float) -> None:
         raise CrustflowInputError(f"gravity {gravity!r} must be positive, in m/s^2")
 
 
-def _fill_nearest(values: np.ndarray, nodata: np.ndarray) -> np.ndarray:
+def fill_nearest(values: np.ndarray, nodata: np.ndarray) -> np.ndarray:
     """Copy of ``values`` with every nodata cell set to its nearest finite cell (index space)."""
     rows, cols = ndimage.distance_transform_edt(nodata, return_distances=False, return_indices=True)
     return values[rows, cols]

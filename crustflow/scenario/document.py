@@ -30,6 +30,7 @@ __all__ = [
     "scenario_from_dict",
     "FORMATS",
     "FIGURE_FORMATS",
+    "COMPRESSIONS",
 ]
 
 #: Output formats an ``[output] formats`` list may name.
@@ -41,6 +42,10 @@ FIGURE_FORMATS = ("png", "svg", "pdf")
 #: Default and allowed range of ``[output] figure_dpi`` (dots per inch). Common practice, no
 #: source: 72 is screen resolution, 600 covers print.
 FIGURE_DPI, FIGURE_DPI_RANGE = 150, (50, 600)
+
+#: Codecs an ``[output] compression`` may name (lossless; crustflow.io.writers maps them onto
+#: GDAL and netCDF4 options). ``deflate`` (the default) is readable by every GIS and NetCDF reader.
+COMPRESSIONS = ("deflate", "zstd", "lerc_zstd", "none")
 
 # Table -> key -> kind ("path", "text", a units kind of crustflow.units.DIMENSIONS, "vector:<kind>",
 # "list"). The nested tables are the scenario file's sections.
@@ -78,6 +83,7 @@ _SCHEMA: dict[str, Any] = {
         "formats": "list",
         "figure_formats": "list",
         "figure_dpi": "number",
+        "compression": "text",
     },
     "budgets": {"sections": "path", "regions": "path"},
     "roof": {"layers": "list"},  # checked by crustflow.scenario.load
@@ -114,6 +120,8 @@ class Scenario:
         File formats of every figure, from :data:`FIGURE_FORMATS` (default PNG only).
     figure_dpi : int
         Resolution of every figure, dots per inch.
+    compression : str
+        Codec of the NetCDF and GeoTIFF outputs, from :data:`COMPRESSIONS` (default "deflate").
     source : Path or None
         The scenario file, if read from one.
     written : dict
@@ -128,6 +136,7 @@ class Scenario:
     crs: str | None = None
     variables: tuple[str, ...] | None = None
     formats: tuple[str, ...] = FORMATS
+    compression: str = "deflate"  #: output codec, from COMPRESSIONS
     source: Path | None = None
     written: dict = field(default_factory=dict, compare=False, repr=False)
     sections: Path | None = None
@@ -164,6 +173,7 @@ class Scenario:
                 "formats": list(self.formats),
                 "figure_formats": list(self.figure_formats),
                 "figure_dpi": self.figure_dpi,
+                "compression": self.compression,
             },
         }
         return out
@@ -349,9 +359,17 @@ def _parse_output(output: dict) -> dict:
     for name in formats:
         if name not in FORMATS:
             raise _unknown_key(name, list(FORMATS), "output.formats")
+    compression = output.get("compression", "deflate")
+    if compression not in COMPRESSIONS:
+        raise CrustflowInputError(
+            f"output.compression is {compression!r}; give one of "
+            f'{", ".join(repr(c) for c in COMPRESSIONS)} ("deflate", the default, is read '
+            'everywhere; "zstd" writes faster)'
+        )
     return {
         "variables": variables,
         "formats": tuple(dict.fromkeys(formats)),
+        "compression": compression,
         **_parse_figure_options(output),
     }
 
