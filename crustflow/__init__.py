@@ -44,7 +44,7 @@ _MOVED = {
     "crustflow.flexure": "crustflow.physics.flexure",
     "crustflow.column": "crustflow.physics.column",
     "crustflow.load": "crustflow.physics.isostasy",
-    "crustflow.maps": "crustflow.geometry",
+    "crustflow.maps": "crustflow.geometry.grid",
     "crustflow.model": "crustflow.engine.api",
     "crustflow.fields": "crustflow.engine.fields",
     "crustflow.budgets": "crustflow.analyses.budgets",

@@ -156,3 +156,35 @@ def test_functions_stay_short():
                         f"{path.relative_to(PACKAGE.parent)}:{node.lineno} {node.name} {lines}"
                     )
     assert not long, "functions over the limit:\n" + "\n".join(long)
+
+
+def test_documented_module_paths_still_import():
+    # The flat layout's module paths that the README and earlier releases documented.
+    import importlib
+
+    import crustflow
+
+    for old, attribute in (
+        ("crustflow.channel", "channel_flow"),
+        ("crustflow.flowlaws", "FLOW_LAWS"),
+        ("crustflow.rheology", "power_law_channel"),
+        ("crustflow.profiles", "velocity_profiles"),
+        ("crustflow.model", "compute_fields"),
+        ("crustflow.budgets", "budget_table"),
+        ("crustflow.maps", "grid_geometry"),
+    ):
+        module = importlib.import_module(old)
+        assert hasattr(module, attribute), (old, attribute)
+    for name in (
+        "load_scenario",
+        "solve",
+        "compute_fields",
+        "budget_table",
+        "channel_flow",
+        "velocity_profile",
+        "velocity_profiles",
+        "evolve",
+        "fit",
+    ):
+        assert callable(getattr(crustflow, name)), name
+    assert crustflow.channel is importlib.import_module("crustflow.physics.channel")
