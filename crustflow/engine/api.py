@@ -19,8 +19,8 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from crustflow._version import __version__
-from crustflow.engine.blocks import Block, BlockReader, WholeGridLoad, block_fields
-from crustflow.engine.checks import GridChecks, InputChecks
+from crustflow.engine.blocks import Block, BlockReader, WholeGridLoad, checked_block_fields
+from crustflow.engine.checks import GridChecks
 from crustflow.engine.fields import crust_thickness_of, fields_si, whole_grid_load
 from crustflow.engine.lazy import lazy_array_fields, lazy_scenario_fields, rows_for_chunks
 from crustflow.engine.rasters import aligned_grid, is_lazy, prepared_grid
@@ -193,25 +193,10 @@ def _whole_block(grids, cells, crs, spacing) -> Block:
 def _eager_fields(grids, cells, p, channel, load_setup, names, crs, spacing) -> dict:
     """The whole grid at once, float64, with every input check of a run."""
     block = _whole_block(grids, cells, crs, spacing)
-    thickness = block.crust_thickness(p)
-    checks = InputChecks({}, p.channel_thickness)
-    checks.update({}, thickness, block.cell, block.elevation)
-    checks.cells.finish()
-    checks.thin.finish()
     whole = _whole_grid_load(grids, cells, p, load_setup, names, crs, spacing)
-    diagnostics: dict = {}
-    si = block_fields(
-        block,
-        p,
-        channel=channel,
-        load=load_setup,
-        wanted=set(names),
-        whole=whole,
-        diagnostics=diagnostics,
-        crust_thickness=thickness,
+    si = checked_block_fields(
+        block, p, channel=channel, load=load_setup, wanted=set(names), whole=whole
     )
-    checks.update_column(diagnostics.get("roof_bad"), None)
-    checks.column.finish()
     return {name: to_practical(name, si[name]) for name in names}
 
 

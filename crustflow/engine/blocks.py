@@ -20,11 +20,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from crustflow.engine.checks import InputChecks
 from crustflow.engine.fields import crust_thickness_of, fields_si, whole_grid_load
 from crustflow.geometry.grid import GridGeometry, grid_geometry
 from crustflow.io.grids import GridSource, close_sources, open_sources
 
-__all__ = ["HALO_ROWS", "Block", "BlockReader", "WholeGridLoad", "block_fields"]
+__all__ = [
+    "HALO_ROWS",
+    "Block",
+    "BlockReader",
+    "WholeGridLoad",
+    "block_fields",
+    "checked_block_fields",
+]
 
 #: Halo rows on each inner side of a block: 1 for the gradient of the load, 1 for the divergence.
 HALO_ROWS = 2
@@ -218,3 +226,34 @@ def block_fields(
     if diagnostics is not None:
         diagnostics.update({k: None if v is None else v[block.own] for k, v in found.items()})
     return {name: values[block.own] for name, values in si.items()}
+
+
+def checked_block_fields(
+    block: Block, parameters, *, channel=None, load=None, wanted=None, whole=None
+) -> dict[str, np.ndarray]:
+    """:func:`block_fields` with the block's own input checks, raising the first problem.
+
+    The checks are those of a run on the block's own rows: a channel not thinner than the crust and
+    parameter grids with impossible values (before computing), roof layers reaching below the
+    channel top (after). Raises :class:`~crustflow.errors.CrustflowInputError`.
+    """
+    thickness = block.crust_thickness(parameters)
+    checks = InputChecks({}, parameters.channel_thickness)
+    own = block.own
+    checks.update({}, thickness[own], block.own_rows(block.cell), block.elevation[own])
+    checks.cells.finish()
+    checks.thin.finish()
+    diagnostics: dict = {}
+    si = block_fields(
+        block,
+        parameters,
+        channel=channel,
+        load=load,
+        wanted=wanted,
+        whole=whole,
+        diagnostics=diagnostics,
+        crust_thickness=thickness,
+    )
+    checks.update_column(diagnostics.get("roof_bad"), diagnostics.get("excluded"))
+    checks.column.finish()
+    return si

@@ -15,7 +15,7 @@ import dask
 import dask.array as dsa
 import numpy as np
 
-from crustflow.engine.blocks import HALO_ROWS, Block, block_fields
+from crustflow.engine.blocks import HALO_ROWS, Block, checked_block_fields
 from crustflow.engine.checks import InputChecks
 from crustflow.engine.strips import compute_strip
 from crustflow.geometry.grid import grid_geometry
@@ -78,23 +78,7 @@ def _array_strip(arrays, cell, x, y, crs, spacing, r0, r1, first, setup, names, 
     p, channel, load = setup
     geometry = grid_geometry(x, y, crs, spacing=spacing)
     block = Block(r0, r1, first, arrays, cell, geometry)
-    thickness = block.crust_thickness(p)
-    checks = InputChecks({}, p.channel_thickness)
-    checks.update({}, thickness[block.own], block.own_rows(cell), block.elevation[block.own])
-    diagnostics: dict = {}
-    si = block_fields(
-        block,
-        p,
-        channel=channel,
-        load=load,
-        wanted=set(names),
-        whole=whole,
-        diagnostics=diagnostics,
-        crust_thickness=thickness,
-    )
-    checks.update_column(diagnostics.get("roof_bad"), diagnostics.get("excluded"))
-    if checks.failed:
-        _raise_on_failed(checks.state(), p.channel_thickness)
+    si = checked_block_fields(block, p, channel=channel, load=load, wanted=set(names), whole=whole)
     return tuple(to_practical(n, si[n]).astype(DTYPE) for n in names)
 
 
