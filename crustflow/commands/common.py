@@ -1,44 +1,13 @@
-"""Pieces shared by the commands: stage timing, a dask.distributed client, budgets of a run."""
+"""Pieces shared by the commands: a dask.distributed client, the features check, budgets of a run."""
 
 from __future__ import annotations
 
-import logging
-import time
-from collections.abc import Callable
 from pathlib import Path
 
 from crustflow.errors import CrustflowInputError
 from crustflow.io.grids import close_sources, open_sources
 
-__all__ = ["Stages", "distributed_client", "check_features", "write_budgets"]
-
-log = logging.getLogger("crustflow")
-
-
-class Stages:
-    """Wall time per stage; calls ``announce(name)`` as each stage starts."""
-
-    def __init__(self, announce: Callable[[str], None] | None = None) -> None:
-        self.timings: dict[str, float] = {}
-        self._announce = announce or (lambda name: None)
-        self._current: tuple[str, float] | None = None
-
-    def __call__(self, name: str) -> None:
-        self._close()
-        self._current = (name, time.perf_counter())
-        log.debug("stage: %s", name)
-        self._announce(name)
-
-    def finish(self) -> dict[str, float]:
-        """End the last stage; return the timings (s per stage)."""
-        self._close()
-        return self.timings
-
-    def _close(self) -> None:
-        if self._current is not None:
-            name, began = self._current
-            self.timings[name] = self.timings.get(name, 0.0) + time.perf_counter() - began
-            self._current = None
+__all__ = ["distributed_client", "check_features", "write_budgets"]
 
 
 def distributed_client(workers: int | None, scheduler: str | None):

@@ -5,11 +5,11 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from crustflow.analyses.evolution.evolve import require_evolution
 from crustflow.analyses.evolution.run import run_evolution
 from crustflow.analyses.memory import check_memory
 from crustflow.constants import SECONDS_PER_YEAR
 from crustflow.engine.progress import Progress
-from crustflow.errors import CrustflowInputError
 from crustflow.io.folders import (
     atomic_folder,
     base_manifest,
@@ -32,11 +32,7 @@ def evolve(scenario_path: Path, out: Path, *, progress: bool = False) -> dict:
     ``written``, ``manifest``), with ``scenario``, ``folder`` and ``seconds``.
     """
     scenario = load_scenario(scenario_path)
-    if scenario.evolution is None:
-        raise CrustflowInputError(
-            'the scenario has no [evolution] table; add one, e.g. [evolution] duration = "2 Myr" '
-            'and save_every = "0.5 Myr" (see the README, "Through time")'
-        )
+    require_evolution(scenario)
     inputs = protected_inputs(scenario)
     check_out_dir(out, inputs)
     check_memory(scenario)

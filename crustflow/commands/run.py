@@ -7,8 +7,9 @@ import time
 from pathlib import Path
 
 from crustflow.analyses.memory import check_memory
-from crustflow.commands.common import Stages, check_features, distributed_client, write_budgets
+from crustflow.commands.common import check_features, distributed_client, write_budgets
 from crustflow.commands.report import write_report
+from crustflow.engine.progress import StageClock
 from crustflow.engine.strips import run_strips
 from crustflow.io.folders import (
     atomic_folder,
@@ -48,7 +49,7 @@ def run(
     inputs = protected_inputs(scenario)
     check_out_dir(out, inputs)
     check_memory(scenario)
-    stages = Stages(announce)
+    stages = StageClock(announce)
     budgets = scenario.sections is not None or scenario.regions is not None
     if budgets:
         check_features(scenario)
@@ -86,7 +87,7 @@ def rows_for_chunk(scenario_path: Path, chunk: int) -> int:
     return max(1, chunk * chunk // width)
 
 
-def _run_into(scenario, tmp: Path, stages: Stages, strip_rows, budgets, client, cog, progress):
+def _run_into(scenario, tmp: Path, stages: StageClock, strip_rows, budgets, client, cog, progress):
     """Compute and write everything a run asks for into ``tmp``; return the run's result."""
     result = run_strips(
         scenario,
@@ -133,7 +134,7 @@ def _run_into(scenario, tmp: Path, stages: Stages, strip_rows, budgets, client, 
     return result
 
 
-def _to_cog(tmp: Path, written: list[str], stages: Stages) -> None:
+def _to_cog(tmp: Path, written: list[str], stages: StageClock) -> None:
     from crustflow.io.writers import to_cog
 
     stages("cloud-optimised GeoTIFF")
@@ -142,7 +143,7 @@ def _to_cog(tmp: Path, written: list[str], stages: Stages) -> None:
             to_cog(tmp / name)
 
 
-def _figure(figure, tmp: Path, scenario, stages: Stages) -> list[str]:
+def _figure(figure, tmp: Path, scenario, stages: StageClock) -> list[str]:
     """The flux map and the rates map, in every ``[output] figure_formats``."""
     from crustflow.figures.common import save_figure
     from crustflow.figures.flux import draw_flux_map

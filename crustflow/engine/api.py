@@ -10,7 +10,6 @@ names and units as ``fields.nc``), computed by the engine's one code path
 from __future__ import annotations
 
 import json
-import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
@@ -23,6 +22,7 @@ from crustflow.engine.blocks import Block, BlockReader, WholeGridLoad, checked_b
 from crustflow.engine.checks import GridChecks
 from crustflow.engine.fields import crust_thickness_of, fields_si, whole_grid_load
 from crustflow.engine.lazy import lazy_array_fields, lazy_scenario_fields, rows_for_chunks
+from crustflow.engine.progress import StageClock
 from crustflow.engine.rasters import aligned_grid, is_lazy, prepared_grid
 from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
@@ -252,7 +252,7 @@ def solve(
         As :func:`compute_fields`, with the scenario title and input provenance in the attributes.
     """
     names = _names(variables if variables is not None else scenario.variables)
-    clock = _StageClock(stage, timings)
+    clock = StageClock(stage, timings)
     if chunks is not None:
         ds = _lazy_solve(scenario, names, chunks, clock)
     else:
@@ -273,26 +273,6 @@ def solve(
     clock.finish()
     ds.attrs["title"] = scenario.title
     return ds
-
-
-class _StageClock:
-    """Wall time per stage, and the caller's stage callback."""
-
-    def __init__(self, stage, timings) -> None:
-        self.stage, self.times = stage, timings if timings is not None else {}
-        self.current, self.start = None, time.perf_counter()
-
-    def __call__(self, name: str) -> None:
-        self.finish()
-        self.current, self.start = name, time.perf_counter()
-        if self.stage is not None:
-            self.stage(name)
-
-    def finish(self) -> None:
-        if self.current is not None:
-            now = time.perf_counter()
-            self.times[self.current] = self.times.get(self.current, 0.0) + now - self.start
-            self.current = None
 
 
 def _lazy_solve(scenario, names, chunks, clock) -> xr.Dataset:

@@ -12,7 +12,7 @@ import logging
 import sys
 import time
 
-__all__ = ["Progress", "LOG_EVERY"]
+__all__ = ["Progress", "StageClock", "LOG_EVERY"]
 
 log = logging.getLogger("crustflow.progress")
 
@@ -93,3 +93,37 @@ class Progress:
 
     def __exit__(self, *exc) -> None:
         self.close()
+
+
+class StageClock:
+    """Wall time per stage of a run; calls ``announce(name)`` as each stage starts.
+
+    Parameters
+    ----------
+    announce : callable, optional
+        Called with the stage's name when it starts (stage lines, progress displays).
+    timings : dict, optional
+        Filled with seconds per stage (a new dict by default; see :attr:`timings`).
+    """
+
+    def __init__(self, announce=None, timings: dict | None = None) -> None:
+        self.timings: dict[str, float] = timings if timings is not None else {}
+        self._announce = announce or (lambda name: None)
+        self._current: tuple[str, float] | None = None
+
+    def __call__(self, name: str) -> None:
+        self._close()
+        self._current = (name, time.perf_counter())
+        log.debug("stage: %s", name)
+        self._announce(name)
+
+    def finish(self) -> dict[str, float]:
+        """End the last stage; return the timings (s per stage)."""
+        self._close()
+        return self.timings
+
+    def _close(self) -> None:
+        if self._current is not None:
+            name, began = self._current
+            self.timings[name] = self.timings.get(name, 0.0) + time.perf_counter() - began
+            self._current = None

@@ -246,14 +246,19 @@ def evolve_grids(
     return run_setup(setup, title=title, progress=progress, step=step)
 
 
-def setup_from_scenario(scenario: Scenario) -> tuple[EvolutionSetup, dict]:
-    """Read a scenario's grids and build its setup; also return the grids' provenance."""
-
+def require_evolution(scenario: Scenario) -> None:
+    """Raise :class:`CrustflowInputError` unless the scenario has an ``[evolution]`` table."""
     if scenario.evolution is None:
         raise CrustflowInputError(
             'the scenario has no [evolution] table; add one, e.g. [evolution] duration = "2 Myr" '
             'and save_every = "0.5 Myr" (see the README, "Through time")'
         )
+
+
+def setup_from_scenario(scenario: Scenario) -> tuple[EvolutionSetup, dict]:
+    """Read a scenario's grids and build its setup; also return the grids' provenance."""
+
+    require_evolution(scenario)
     grids = read_inputs(scenario)
     setup = build_setup(
         grids.topography,
