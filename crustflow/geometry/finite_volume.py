@@ -32,6 +32,7 @@ __all__ = [
     "face_difference",
     "net_inflow",
     "conductance_matrix",
+    "ConductanceAssembly",
     "EDGE_NAMES",
 ]
 
@@ -248,18 +249,54 @@ def conductance_matrix(
     scipy.sparse.csr_matrix
         ``(S p)_i = sum over faces of i: w (p_i - p_j)``: the net volume outflow of cell i for a
         potential p (p = 0 on cells not among ``unknowns``). Symmetric positive semi-definite.
+        Built by :class:`ConductanceAssembly`; use one directly to build many matrices.
     """
-    ncell = net.shape[0] * net.shape[1]
-    position = np.full(ncell, -1, dtype=np.int64)
-    position[unknowns] = np.arange(unknowns.size)
-    pl, pr = position[net.left], position[net.right]
-    w = np.asarray(weights, dtype=float)
-    diag = np.bincount(pl[pl >= 0], w[pl >= 0], minlength=unknowns.size) + np.bincount(
-        pr[pr >= 0], w[pr >= 0], minlength=unknowns.size
-    )
-    both = (pl >= 0) & (pr >= 0)
-    rows = np.concatenate([pl[both], pr[both], np.arange(unknowns.size)])
-    cols = np.concatenate([pr[both], pl[both], np.arange(unknowns.size)])
-    vals = np.concatenate([-w[both], -w[both], diag])
-    n = unknowns.size
-    return sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
+    return ConductanceAssembly(net, unknowns).matrix(weights)
+
+
+class ConductanceAssembly:
+    """The sparsity pattern of :func:`conductance_matrix` for one network and set of unknowns.
+
+    The pattern (sorted CSR indices, the slot of every face's entries) is found once; each matrix
+    then costs two weighted counts over the faces. Nonlinear flux laws need a matrix per iteration
+    with the same pattern.
+
+    Parameters
+    ----------
+    net : FaceNetwork
+    unknowns : numpy.ndarray of int64
+        Flat grid indices of the cells solved for, in the order of the matrix rows.
+    """
+
+    def __init__(self, net: FaceNetwork, unknowns: np.ndarray) -> None:
+        n = int(unknowns.size)
+        position = np.full(net.shape[0] * net.shape[1], -1, dtype=np.int64)
+        position[unknowns] = np.arange(n)
+        pl, pr = position[net.left], position[net.right]
+        self.size = n
+        self.left_face, self.right_face = np.flatnonzero(pl >= 0), np.flatnonzero(pr >= 0)
+        self.left_row, self.right_row = pl[self.left_face], pr[self.right_face]
+        self.both = np.flatnonzero((pl >= 0) & (pr >= 0))
+        rows = np.concatenate([pl[self.both], pr[self.both], np.arange(n)])
+        cols = np.concatenate([pr[self.both], pl[self.both], np.arange(n)])
+        # One slot per distinct (row, col): a face joining a cell to itself or two faces joining
+        # the same pair (whole-globe grids one or two columns wide) add up in their slot.
+        keys, self.slot = np.unique(rows * max(n, 1) + cols, return_inverse=True)
+        self.indices = (keys % max(n, 1)).astype(np.int32 if n < 2**31 else np.int64)
+        self.indptr = np.searchsorted(keys // max(n, 1), np.arange(n + 1)).astype(
+            self.indices.dtype
+        )
+
+    def matrix(self, weights: np.ndarray, diagonal: np.ndarray | None = None) -> sp.csr_matrix:
+        """``S`` for per-face ``weights`` (see :func:`conductance_matrix`), plus ``diagonal``."""
+        w = np.asarray(weights, dtype=float)
+        n = self.size
+        diag = np.bincount(self.left_row, w[self.left_face], minlength=n) + np.bincount(
+            self.right_row, w[self.right_face], minlength=n
+        )
+        if diagonal is not None:
+            diag = diag + diagonal
+        off = -w[self.both]
+        values = np.concatenate([off, off, diag])
+        data = np.bincount(self.slot, values, minlength=self.indices.size)
+        return sp.csr_matrix((data, self.indices, self.indptr), shape=(n, n), copy=False)

@@ -102,3 +102,81 @@ def test_barenblatt_profile_solves_the_p_laplacian():
 
         div = (flux(x0 + e) - flux(x0 - e)) / (2 * e)
         assert u_t == pytest.approx(div, rel=1e-5)
+
+
+def _power_law_toy(nrow=9, ncol=11, dx=2000.0, exponent=3.0):
+    """A power-law transport problem on a small projected grid, with the tangential derivative of
+    the evolution model (mean of the two cells' cross derivatives from ``gradient``)."""
+    from crustflow.geometry.grid import gradient
+
+    x, y = (np.arange(ncol) + 0.5) * dx, (np.arange(nrow)[::-1] + 0.5) * dx
+    geom = GridGeometry(kind="projected", x=x, y=y)
+    net = face_network(geom, np.ones(geom.shape, dtype=bool))
+
+    def tangential(phi):
+        d_east, d_north = gradient(phi.reshape(geom.shape), geom)
+        d_east, d_north = d_east.ravel(), d_north.ravel()
+        across = np.where(
+            net.axis == 0,
+            d_north[net.left] + d_north[net.right],
+            d_east[net.left] + d_east[net.right],
+        )
+        return 0.5 * across
+
+    rng = np.random.default_rng(7)
+    return ChannelTransport(
+        network=net,
+        conductance=rng.uniform(0.5, 2.0, net.size) * 1e-16,
+        exponent=exponent,
+        wall_flux=np.zeros(net.size),
+        source=np.zeros(nrow * ncol),
+        free=np.arange(nrow * ncol)[ncol:],  # the first row held fixed
+        potential=lambda t: (3e3 * t, np.full(t.size, 3e3)),
+        tangential=tangential,
+    )
+
+
+@pytest.mark.parametrize("exponent", [3.0, 2.0, 4.5])
+def test_newton_matrix_is_the_derivative_of_the_net_outflow(exponent):
+    # The Newton matrix of a step applied to a potential change y equals the change of the net
+    # outflow of the free cells with the tangential derivative held at its current value, by
+    # central differences (value derived: first-order Taylor expansion of the face law).
+    import dataclasses
+
+    from crustflow.geometry.finite_volume import ConductanceAssembly, net_inflow
+    from crustflow.physics.diffusion import _face_law
+
+    problem = _power_law_toy(exponent=exponent)
+    rng = np.random.default_rng(3)
+    cells = problem.network.area.size
+    phi = 1e8 * rng.standard_normal(cells)
+    _, weights = _face_law(problem, phi, jacobian=True)
+    y = 1e3 * rng.standard_normal(problem.free.size)
+    newton = ConductanceAssembly(problem.network, problem.free).matrix(weights) @ y
+
+    held = problem.tangential(phi)
+    lagged = dataclasses.replace(problem, tangential=lambda p: held)
+    step = np.zeros(cells)
+    step[problem.free] = y * 0.1  # round-off, not truncation, limits smaller steps
+
+    def outflow(p, law):
+        return -net_inflow(_face_law(law, p)[0], law.network)[law.free]
+
+    numeric = (outflow(phi + step, lagged) - outflow(phi - step, lagged)) / 0.2
+    assert np.abs(newton - numeric).max() < 1e-8 * np.abs(numeric).max()
+    # ... and the tangential part is not negligible: the full derivative differs.
+    full = (outflow(phi + step, problem) - outflow(phi - step, problem)) / 0.2
+    assert np.abs(full - numeric).max() > 1e-3 * np.abs(numeric).max()
+
+
+def test_power_law_steps_follow_the_error_not_powers_of_two():
+    # A nonlinear law takes the steps its error allows, not the snapshot interval / 2^j that let a
+    # linear law reuse factorizations (project choice); Newton needs few iterations per step.
+    problem = _power_law_toy(nrow=16, ncol=16, dx=4000.0)
+    rng = np.random.default_rng(5)
+    start = 40e3 + 500.0 * rng.standard_normal(16 * 16)
+    year = 3.15576e7
+    stats = integrate(problem, start, [0.0, 2e5 * year, 4e5 * year], tolerance=1.0)
+    assert stats.steps >= 4 and stats.newton_iterations <= 6 * stats.steps
+    ratios = np.log2(2e5 * year / np.array(stats.step_sizes))
+    assert np.any(np.abs(ratios - np.round(ratios)) > 1e-6)
