@@ -120,6 +120,22 @@ def test_no_import_cycles():
     assert not cycles, "import cycles:\n" + "\n".join(cycles)
 
 
+def test_private_names_stay_in_their_module():
+    # A name with a leading underscore is its module's own; what another module needs is public
+    # (project rule: private helpers crossing modules hide the real contract between them).
+    crossing = []
+    for _, path in _modules():
+        for node in ast.walk(ast.parse(path.read_text())):
+            if isinstance(node, ast.ImportFrom) and (node.module or "").startswith("crustflow"):
+                names = [a.name for a in node.names if a.name.startswith("_")]
+                crossing += [
+                    f"{path.relative_to(PACKAGE.parent)}:{node.lineno} {node.module}.{n}"
+                    for n in names
+                    if not n.startswith("__")
+                ]
+    assert not crossing, "private names imported from another module:\n" + "\n".join(crossing)
+
+
 def test_package_root_stays_small():
     root = [p for p in PACKAGE.glob("*.py")]
     assert len(root) <= 12, sorted(p.name for p in root)

@@ -419,7 +419,7 @@ def cell_spacings(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
     if geom.kind == "projected":
         return np.full((1, 1), abs(geom.dx)), np.full((1, 1), abs(geom.dy))
     phi = np.radians(geom.y)[:, None]
-    n_rad, m_rad = _radii(phi, geom.ellipsoid)
+    n_rad, m_rad = radii_of_curvature(phi, geom.ellipsoid)
     return (
         n_rad * np.cos(phi) * abs(math.radians(geom.dx)),
         m_rad * abs(math.radians(geom.dy)),
@@ -468,7 +468,7 @@ def face_lengths(geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
         return np.full((nrow, 1), abs(geom.dy)), np.full((nrow + 1, 1), abs(geom.dx))
     phi_f = np.radians(_row_bounds(geom))
     east = np.abs(_meridian_arc(phi_f[:-1], phi_f[1:], geom.ellipsoid))
-    n_rad, _ = _radii(phi_f, geom.ellipsoid)
+    n_rad, _ = radii_of_curvature(phi_f, geom.ellipsoid)
     north = n_rad * np.cos(phi_f) * abs(math.radians(geom.dx))
     north = np.where(np.abs(phi_f) >= math.radians(POLE_LATITUDE), 0.0, north)
     return east[:, None], north[:, None]
@@ -579,7 +579,7 @@ def gradient(field, geom: GridGeometry) -> tuple[np.ndarray, np.ndarray]:
             np.add(east, p.shear * fy, out=east, where=sheared)
         return east, p.north * fy
     phi = np.radians(geom.y)[:, None]
-    n_rad, m_rad = _radii(phi, geom.ellipsoid)
+    n_rad, m_rad = radii_of_curvature(phi, geom.ellipsoid)
     east_scale = np.where(np.abs(phi) >= math.radians(POLE_LATITUDE), np.nan, n_rad * np.cos(phi))
     d_lam = _axis_derivative(f, 1, math.radians(geom.dx), periodic=geom.periodic_x)
     d_phi = _axis_derivative(f, 0, math.radians(geom.dy))
@@ -832,7 +832,7 @@ def _checked_field(values, geom: GridGeometry, name: str) -> np.ndarray:
     return f
 
 
-def _radii(phi: np.ndarray, ell: Ellipsoid) -> tuple[np.ndarray, np.ndarray]:
+def radii_of_curvature(phi: np.ndarray, ell: Ellipsoid) -> tuple[np.ndarray, np.ndarray]:
     """Prime-vertical (N) and meridional (M) radii of curvature, m, at latitude phi (rad)."""
     w = np.sqrt(1.0 - ell.e2 * np.sin(phi) ** 2)
     return ell.semi_major / w, ell.semi_major * (1.0 - ell.e2) / w**3
@@ -843,7 +843,7 @@ def _meridian_arc(phi1: np.ndarray, phi2: np.ndarray, ell: Ellipsoid) -> np.ndar
     half = 0.5 * (phi2 - phi1)
     mid = 0.5 * (phi2 + phi1)
     nodes = mid[..., None] + half[..., None] * _GL_NODES
-    _, m_rad = _radii(nodes, ell)
+    _, m_rad = radii_of_curvature(nodes, ell)
     # Weighted sum node by node, not a matrix product: BLAS may order the sum differently for
     # different numbers of rows, and a strip of rows must get the whole grid's values bit for bit.
     total = np.zeros_like(half)

@@ -43,12 +43,12 @@ from crustflow.errors import CrustflowInputError
 from crustflow.physics.channel_kernels import (
     Array,
     ArrayLike,
-    _as_float,
-    _mean_velocity,
-    _peak_speed,
-    _prepare,
-    _simpson_last_axis,
-    _unit_ratio,
+    as_float_array,
+    broadcast_inputs,
+    mean_velocity,
+    peak_speed_kernel,
+    simpson_last_axis,
+    unit_ratio,
 )
 
 if TYPE_CHECKING:
@@ -215,7 +215,7 @@ def channel_flow(
     >>> round(float(-sol.mean_velocity_east) * year * 1e3, 2)  # mm/yr, westward
     80.0
     """
-    drive_e, drive_n, h, eta, wall_e, wall_n = _prepare(
+    drive_e, drive_n, h, eta, wall_e, wall_n = broadcast_inputs(
         drive_east=drive_east,
         drive_north=drive_north,
         thickness=thickness,
@@ -258,7 +258,7 @@ def channel_flux(
     ----------
     Turcotte, D. L. & Schubert, G. (2002), Geodynamics, 2nd ed., section 6.2.
     """
-    _, _, mean_e, mean_n = _mean_velocity(
+    _, _, mean_e, mean_n = mean_velocity(
         drive_east, drive_north, thickness, viscosity, wall_east, wall_north
     )
     return thickness * mean_e, thickness * mean_n
@@ -268,7 +268,7 @@ def _uniform_channel(
     drive_e: Array, drive_n: Array, h: Array, eta: Array, wall_e: Array, wall_n: Array
 ) -> ChannelSolution:
     """Kernel of :func:`channel_flow` on float arrays of one shape."""
-    b_e, b_n, mean_e, mean_n = _mean_velocity(drive_e, drive_n, h, eta, wall_e, wall_n)
+    b_e, b_n, mean_e, mean_n = mean_velocity(drive_e, drive_n, h, eta, wall_e, wall_n)
     a_e = wall_e - b_e
     a_n = wall_n - b_n
 
@@ -278,7 +278,7 @@ def _uniform_channel(
     half_e = 0.5 * drive_e * h
     half_n = 0.5 * drive_n * h
 
-    peak, peak_height = _peak_speed(a_e, a_n, b_e, b_n, h)
+    peak, peak_height = peak_speed_kernel(a_e, a_n, b_e, b_n, h)
 
     # Backflow: sign of u(s).q along the channel (see channel_flow Notes).
     wall_part = 0.5 * np.hypot(wall_e, wall_n)
@@ -291,7 +291,7 @@ def _uniform_channel(
     backflow = net_flux & (against_near_fixed | against_near_moving)
 
     parts = wall_part + pressure_part
-    share = np.where(np.isnan(parts), np.nan, _unit_ratio(wall_part, parts, 0.0))
+    share = np.where(np.isnan(parts), np.nan, unit_ratio(wall_part, parts, 0.0))
 
     return ChannelSolution(
         flux_east=h * mean_e,
@@ -362,7 +362,7 @@ def velocity_profile(
     ----------
     .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2.
     """
-    zeta, drive_e, drive_n, h, eta, wall_e, wall_n = _prepare(
+    zeta, drive_e, drive_n, h, eta, wall_e, wall_n = broadcast_inputs(
         zeta=zeta,
         drive_east=drive_east,
         drive_north=drive_north,
@@ -414,7 +414,9 @@ def backflow_drive_threshold(
     ----------
     .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2.
     """
-    h, eta, speed = _prepare(thickness=thickness, viscosity=viscosity, wall_speed=wall_speed)
+    h, eta, speed = broadcast_inputs(
+        thickness=thickness, viscosity=viscosity, wall_speed=wall_speed
+    )
     return 2.0 * eta * np.abs(speed) / np.square(h)
 
 
@@ -447,7 +449,9 @@ def zero_flux_drive(thickness: ArrayLike, viscosity: ArrayLike, wall_speed: Arra
     ----------
     .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2.
     """
-    h, eta, speed = _prepare(thickness=thickness, viscosity=viscosity, wall_speed=wall_speed)
+    h, eta, speed = broadcast_inputs(
+        thickness=thickness, viscosity=viscosity, wall_speed=wall_speed
+    )
     return 6.0 * eta * np.abs(speed) / np.square(h)
 
 
@@ -505,8 +509,8 @@ def fluidity_moments(zeta: ArrayLike, viscosity_profile: ArrayLike) -> tuple[Arr
     .. [2] Press, W. H., Teukolsky, S. A., Vetterling, W. T. & Flannery, B. P. (2007).
        *Numerical Recipes*, 3rd ed., Cambridge University Press, section 4.1.
     """
-    zeta = _as_float(zeta, "zeta")
-    eta = _as_float(viscosity_profile, "viscosity_profile")
+    zeta = as_float_array(zeta, "zeta")
+    eta = as_float_array(viscosity_profile, "viscosity_profile")
     if zeta.ndim == 0 or eta.ndim == 0:
         raise CrustflowInputError(
             "zeta and viscosity_profile must be sampled along their last axis (got a scalar); "
@@ -526,9 +530,9 @@ def fluidity_moments(zeta: ArrayLike, viscosity_profile: ArrayLike) -> tuple[Arr
     fluidity = 1.0 / eta
     weighted = zeta * fluidity
     return (
-        _simpson_last_axis(fluidity, zeta),
-        _simpson_last_axis(weighted, zeta),
-        _simpson_last_axis(zeta * weighted, zeta),
+        simpson_last_axis(fluidity, zeta),
+        simpson_last_axis(weighted, zeta),
+        simpson_last_axis(zeta * weighted, zeta),
     )
 
 
@@ -588,7 +592,7 @@ def flux_from_moments(
     ----------
     .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2.
     """
-    drive_e, drive_n, h, i0, i1, i2, wall_e, wall_n = _prepare(
+    drive_e, drive_n, h, i0, i1, i2, wall_e, wall_n = broadcast_inputs(
         drive_east=drive_east,
         drive_north=drive_north,
         thickness=thickness,

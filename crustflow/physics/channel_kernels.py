@@ -37,7 +37,7 @@ ArrayLike: TypeAlias = "np.ndarray | da.Array | float"
 # --------------------------------------------------------------------------------------------------
 
 
-def _as_float(value: ArrayLike, name: str) -> Array:
+def as_float_array(value: ArrayLike, name: str) -> Array:
     """Return ``value`` as a float array without computing or copying dask arrays."""
     if not (hasattr(value, "shape") and hasattr(value, "dtype")):
         try:
@@ -56,9 +56,9 @@ def _as_float(value: ArrayLike, name: str) -> Array:
     return value
 
 
-def _prepare(**named: ArrayLike) -> list[Array]:
+def broadcast_inputs(**named: ArrayLike) -> list[Array]:
     """Convert inputs to float arrays and broadcast them against each other (no copies)."""
-    arrays = [_as_float(value, name) for name, value in named.items()]
+    arrays = [as_float_array(value, name) for name, value in named.items()]
     try:
         return list(np.broadcast_arrays(*arrays))
     except ValueError:
@@ -69,7 +69,7 @@ def _prepare(**named: ArrayLike) -> list[Array]:
         ) from None
 
 
-def _unit_ratio(numerator: Array, denominator: Array, fill: float) -> Array:
+def unit_ratio(numerator: Array, denominator: Array, fill: float) -> Array:
     """``numerator / denominator`` where it lies in [-1, 1], else ``fill``.
 
     Divides only where ``|numerator| <= |denominator|`` and the denominator is nonzero, so it never
@@ -84,7 +84,7 @@ def _unit_ratio(numerator: Array, denominator: Array, fill: float) -> Array:
 # --------------------------------------------------------------------------------------------------
 
 
-def _mean_velocity(drive_e, drive_n, h, eta, wall_e, wall_n):
+def mean_velocity(drive_e, drive_n, h, eta, wall_e, wall_n):
     """Pressure-driven velocity scale B and the mean velocity, m/s (shared by every flux path)."""
     # Pressure-driven velocity scale B = G h^2 / (2 eta) (m/s): u(s) = A s + B s^2, A = U - B.
     scale = np.square(h) / (2.0 * eta)
@@ -96,7 +96,9 @@ def _mean_velocity(drive_e, drive_n, h, eta, wall_e, wall_n):
     return b_e, b_n, mean_e, mean_n
 
 
-def _peak_speed(a_e: Array, a_n: Array, b_e: Array, b_n: Array, h: Array) -> tuple[Array, Array]:
+def peak_speed_kernel(
+    a_e: Array, a_n: Array, b_e: Array, b_n: Array, h: Array
+) -> tuple[Array, Array]:
     """Largest ``|A s + B s^2|`` over ``0 <= s <= 1`` and the height ``s h`` where it occurs."""
     # Normalise by |A| + |B| so that the squares below stay near 1 whatever the units.
     norm = np.hypot(a_e, a_n) + np.hypot(b_e, b_n)
@@ -108,8 +110,8 @@ def _peak_speed(a_e: Array, a_n: Array, b_e: Array, b_n: Array, h: Array) -> tup
     c0 = a_e * a_e + a_n * a_n
     root_part = -0.5 * (c1 + np.copysign(np.sqrt(np.maximum(c1 * c1 - 4.0 * c2 * c0, 0.0)), c1))
     # Only roots in [0, 1] matter; others become the lower wall, already a candidate.
-    first = np.clip(_unit_ratio(root_part, c2, 0.0), 0.0, 1.0)
-    second = np.clip(_unit_ratio(c0, root_part, 0.0), 0.0, 1.0)
+    first = np.clip(unit_ratio(root_part, c2, 0.0), 0.0, 1.0)
+    second = np.clip(unit_ratio(c0, root_part, 0.0), 0.0, 1.0)
 
     def speed(s: Array | float) -> Array:
         return np.hypot(a_e * s + b_e * s * s, a_n * s + b_n * s * s)
@@ -132,7 +134,7 @@ def _peak_speed(a_e: Array, a_n: Array, b_e: Array, b_n: Array, h: Array) -> tup
 # --------------------------------------------------------------------------------------------------
 
 
-def _simpson_last_axis(y: Array, x: Array) -> Array:
+def simpson_last_axis(y: Array, x: Array) -> Array:
     """Composite Simpson integral of ``y`` over ``x`` along the last axis, with array ops only.
 
     Same rule and weights as ``scipy.integrate.simpson`` (SciPy >= 1.11) on irregular samples:

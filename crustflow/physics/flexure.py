@@ -40,7 +40,7 @@ from scipy import fft as sp_fft
 from scipy import ndimage
 
 from crustflow.errors import CrustflowInputError
-from crustflow.geometry.grid import GridGeometry, _radii
+from crustflow.geometry.grid import GridGeometry, radii_of_curvature
 from crustflow.geometry.projection import point_factors
 
 __all__ = [
@@ -157,8 +157,8 @@ def local_frame(geometry: GridGeometry) -> LocalFrame:
         return _projected_frame(geometry)
     phi = np.radians(geometry.y)
     phi0 = 0.5 * (phi[0] + phi[-1])
-    n_rows, m_rows = _radii(phi, geometry.ellipsoid)
-    n0, m0 = _radii(np.array(phi0), geometry.ellipsoid)
+    n_rows, m_rows = radii_of_curvature(phi, geometry.ellipsoid)
+    n0, m0 = radii_of_curvature(np.array(phi0), geometry.ellipsoid)
     east0 = float(n0 * np.cos(phi0))
     dlam, dphi = abs(math.radians(geometry.dx)), abs(math.radians(geometry.dy))
     if not east0 > 0.0:

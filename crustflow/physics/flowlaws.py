@@ -49,7 +49,7 @@ import numpy as np
 from crustflow.errors import CrustflowInputError
 from crustflow.physics.temperature import (
     MAX_TEMPERATURE,
-    _check_temperature,
+    check_temperature,
     steady_geotherm,
     temperature_profile,
 )
@@ -302,7 +302,7 @@ def newtonian_flow_law(
     ----------
     .. [1] Ranalli, G. (1995). *Rheology of the Earth*, 2nd ed., chapter 4 (from memory).
     """
-    _check_temperature(temperature_K, "temperature_K")
+    check_temperature(temperature_K, "temperature_K")
     if not viscosity > 0.0:
         raise CrustflowInputError(f"viscosity must be positive Pa s, got {viscosity}")
     a_axial = np.exp(activation_energy / (GAS_CONSTANT * temperature_K)) / (3.0 * viscosity)
@@ -380,7 +380,7 @@ def simple_shear_prefactor(
     ----------
     .. [1] Tiesinga, E. et al. (2021). CODATA 2018. *Reviews of Modern Physics* 93, 025010.
     """
-    t = _check_temperature(temperature_K, "temperature_K")
+    t = check_temperature(temperature_K, "temperature_K")
     exponent = -(law.activation_energy + np.asarray(pressure) * law.activation_volume)
     factor = axial_to_shear_factor(law.stress_exponent) * law.axial_prefactor_si
     return factor * np.exp(exponent / (GAS_CONSTANT * t))

@@ -35,7 +35,7 @@ GAUSS_ORDER = 16
 
 
 @lru_cache(maxsize=32)
-def _gauss(order: int) -> tuple[np.ndarray, np.ndarray]:
+def gauss_legendre(order: int) -> tuple[np.ndarray, np.ndarray]:
     """Gauss-Legendre nodes and weights on [-1, 1] (read-only arrays)."""
     x, w = np.polynomial.legendre.leggauss(order)
     x.setflags(write=False)
@@ -106,7 +106,7 @@ def fluidity_moments_gauss(
     h = np.asarray(thickness, dtype=np.float64)
 
     def moments(nodes: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        x, w = _gauss(nodes)
+        x, w = gauss_legendre(nodes)
         i0 = i1 = i2 = 0.0
         for xi, wi in zip(x, w, strict=True):
             zeta = 0.5 * h * (xi + 1.0)

@@ -1,10 +1,10 @@
 """Internals of the power-law channel of :mod:`crustflow.physics.rheology`.
 
 Dimensionless, on flattened 1-D arrays of cells: the checks and scaling of the inputs and the first
-guess (:func:`_law_config`, :func:`_flatten`, :func:`_setup`), the integrals over the height (exact
+guess (:func:`law_config`, :func:`flatten_cells`, :func:`setup_cells`), the integrals over the height (exact
 polynomial sums for odd integer n, split Gauss-Legendre quadrature otherwise), the safeguarded
-Newton iteration (:func:`_newton`), and the dimensional outputs with peak speed and backflow
-(:func:`_outputs`). The equations, the solver and its accuracy are documented in
+Newton iteration (:func:`solve_newton`), and the dimensional outputs with peak speed and backflow
+(:func:`solution_fields`). The equations, the solver and its accuracy are documented in
 :func:`crustflow.physics.rheology.power_law_channel`; conventions as in :mod:`crustflow.physics.rheology`.
 
 References
@@ -29,7 +29,7 @@ import numpy as np
 
 from crustflow.errors import CrustflowInputError
 from crustflow.physics.channel import BACKFLOW_RTOL
-from crustflow.physics.fluidity import GAUSS_ORDER, _gauss
+from crustflow.physics.fluidity import GAUSS_ORDER, gauss_legendre
 
 #: Relative tolerance of the upper-wall condition, ``|u(h) - U| <= SOLVER_RTOL (|U| + V_p)``.
 SOLVER_RTOL = 1e-9
@@ -166,7 +166,7 @@ def _poly_sums(a, b, c, mu, p, *, derivatives=False, flux=False):
     return sums
 
 
-def _abs_power(t2: np.ndarray, n: float) -> np.ndarray:
+def abs_power(t2: np.ndarray, n: float) -> np.ndarray:
     """``|tau|^(n-1)`` from ``t2 = |tau|^2``, avoiding pow() where n allows."""
     e = 0.5 * (n - 1.0)
     if e == 0.0:
@@ -183,7 +183,7 @@ def _abs_power(t2: np.ndarray, n: float) -> np.ndarray:
     return np.power(t2, e)
 
 
-def _shape_factor(cells: _Cells, law: _Law, sigma):
+def shape_factor(cells: _Cells, law: _Law, sigma):
     """Scaled prefactor ``a(sigma) = A(zeta) / A_mean`` (1 for a uniform prefactor)."""
     if law.profile is None:
         return 1.0
@@ -207,7 +207,7 @@ def _quad(cells: _Cells, law: _Law, m_e, m_n, lo, hi, *, jacobian=False, moments
     derivative in m) if ``jacobian``, then ``E, S_e, S_n`` (integrals of a |tau|^(n-1) and of
     sigma a |tau|^(n-1) tau) if ``moments``.
     """
-    x, w = _gauss(nodes or law.nodes)
+    x, w = gauss_legendre(nodes or law.nodes)
     x = x[:, None]
     if law.p is None:
         split = _minimum_point(cells, m_e, m_n, lo, hi)
@@ -221,9 +221,9 @@ def _quad(cells: _Cells, law: _Law, m_e, m_n, lo, hi, *, jacobian=False, moments
         t_e = m_e + cells.g_e * s
         t_n = m_n + cells.g_n * s
         t2 = t_e * t_e + t_n * t_n
-        f = _abs_power(t2, law.n)
+        f = abs_power(t2, law.n)
         if law.profile is not None:
-            f = f * _shape_factor(cells, law, s)
+            f = f * shape_factor(cells, law, s)
         f_e, f_n = f * t_e, f * t_n
         parts = [f_e, f_n]
         if jacobian:
@@ -261,7 +261,7 @@ def _evaluate(cells: _Cells, law: _Law, m_e, m_n, jacobian: bool):
     return r_e, r_n, (j11, j12, j22)
 
 
-def _newton(cells: _Cells, law: _Law, m_e, m_n, max_iterations: int):
+def solve_newton(cells: _Cells, law: _Law, m_e, m_n, max_iterations: int):
     """Safeguarded Newton on all cells at once; returns m, converged, iterations, residual.
 
     Finished cells leave the iteration; the arrays are compacted once a third of them has left
@@ -333,7 +333,7 @@ def _newton(cells: _Cells, law: _Law, m_e, m_n, max_iterations: int):
     return m_e, m_n, converged, iterations, residual
 
 
-def _poly_coefficients(cells: _Cells, law: _Law, m_e, m_n):
+def poly_coefficients(cells: _Cells, law: _Law, m_e, m_n):
     """Coefficients of ``u / V = sum_j c_j x^j``, ``x = sigma + 1/2 = zeta / h`` (uniform A, odd n).
 
     With ``t0 = m - g/2`` (stress at the lower wall), ``tau = t0 + g x`` and
@@ -363,7 +363,7 @@ def _horner(coefficients, sigma):
     return out
 
 
-def _velocity(cells: _Cells, law: _Law, m_e, m_n, sigma, coefficients=None):
+def scaled_velocity(cells: _Cells, law: _Law, m_e, m_n, sigma, coefficients=None):
     """Scaled velocity ``u(sigma) / V`` relative to the lower wall."""
     if coefficients is not None:
         x = sigma + 0.5
@@ -391,7 +391,7 @@ def _peak(cells: _Cells, law: _Law, m_e, m_n, coefficients):
     for k in range(1, PEAK_SAMPLES):  # interior samples; the walls are candidates below
         s = -0.5 + k * spacing
         if coefficients is not None:
-            u_e, u_n = _velocity(cells, law, m_e, m_n, s, coefficients)
+            u_e, u_n = scaled_velocity(cells, law, m_e, m_n, s, coefficients)
         else:  # cumulative panels
             part = _quad(cells, law, m_e, m_n, s - spacing, s, nodes=short)
             u_e, u_n = u_e + part[0], u_n + part[1]
@@ -407,7 +407,7 @@ def _peak(cells: _Cells, law: _Law, m_e, m_n, coefficients):
         t_e, t_n = m_e + cells.g_e * s, m_n + cells.g_n * s
         t2 = t_e * t_e + t_n * t_n
         phi = v_e * t_e + v_n * t_n
-        slope = _shape_factor(cells, law, s) * _abs_power(t2, law.n) * t2
+        slope = shape_factor(cells, law, s) * abs_power(t2, law.n) * t2
         slope = slope + v_e * cells.g_e + v_n * cells.g_n
         # Step only where the slope is negative (towards a maximum), within the bracket.
         slope = np.minimum(slope, 0.0)
@@ -415,7 +415,7 @@ def _peak(cells: _Cells, law: _Law, m_e, m_n, coefficients):
             move = phi / slope
         s = np.minimum(np.maximum(s - np.where(slope < 0.0, move, 0.0), lo), hi)
         if coefficients is not None:
-            v_e, v_n = _velocity(cells, law, m_e, m_n, s, coefficients)
+            v_e, v_n = scaled_velocity(cells, law, m_e, m_n, s, coefficients)
         else:
             part = _quad(cells, law, m_e, m_n, anchor, s, nodes=short)
             v_e, v_n = anchor_e + part[0], anchor_n + part[1]
@@ -424,7 +424,7 @@ def _peak(cells: _Cells, law: _Law, m_e, m_n, coefficients):
     candidates = [
         (np.sqrt(best2), anchor),
         (_norm(v_e, v_n), s),
-        (_norm(*_velocity(cells, law, m_e, m_n, star, coefficients)), star),
+        (_norm(*scaled_velocity(cells, law, m_e, m_n, star, coefficients)), star),
         (_norm(cells.u_e, cells.u_n), 0.5),
     ]
     best, best_s = np.zeros(size), np.full(size, -0.5)
@@ -435,7 +435,7 @@ def _peak(cells: _Cells, law: _Law, m_e, m_n, coefficients):
     return best, best_s
 
 
-def _outputs(cells: _Cells, law: _Law, m_e, m_n) -> dict[str, np.ndarray]:
+def solution_fields(cells: _Cells, law: _Law, m_e, m_n) -> dict[str, np.ndarray]:
     """Dimensional fields of the solved cells (see PowerLawSolution)."""
     g_e, g_n = cells.g_e, cells.g_n
     coefficients = None
@@ -447,7 +447,7 @@ def _outputs(cells: _Cells, law: _Law, m_e, m_n) -> dict[str, np.ndarray]:
         i_e, i_n = m_e * big_e + g_e * big_o, m_n * big_e + g_n * big_o
         s_e, s_n = m_e * big_o + g_e * big_f, m_n * big_o + g_n * big_f
         if law.profile is None:
-            coefficients = _poly_coefficients(cells, law, m_e, m_n)
+            coefficients = poly_coefficients(cells, law, m_e, m_n)
     # Scaled mean velocity q / (h V) = integral (1/2 - sigma) a |tau|^(n-1) tau dsigma.
     q_e, q_n = 0.5 * i_e - s_e, 0.5 * i_n - s_n
     couette = 0.5 - cells.mu[1]
@@ -469,7 +469,7 @@ def _outputs(cells: _Cells, law: _Law, m_e, m_n) -> dict[str, np.ndarray]:
     backflow = net & (cells.u_e * q_e + cells.u_n * q_n < -tol)
     if inside.size:
         part = cells.take(inside)
-        v_e, v_n = _velocity(
+        v_e, v_n = scaled_velocity(
             part,
             law,
             m_e[inside],
@@ -500,7 +500,7 @@ def _outputs(cells: _Cells, law: _Law, m_e, m_n) -> dict[str, np.ndarray]:
     }
 
 
-def _law_config(stress_exponent, prefactor_profile, quadrature_nodes) -> _Law:
+def law_config(stress_exponent, prefactor_profile, quadrature_nodes) -> _Law:
     if np.ndim(stress_exponent) != 0:
         raise CrustflowInputError(
             "stress_exponent must be one number for all cells; solve each flow law separately"
@@ -525,7 +525,7 @@ def _law_config(stress_exponent, prefactor_profile, quadrature_nodes) -> _Law:
     return _Law(n, p, prefactor_profile, nodes)
 
 
-def _flatten(named: dict, args: tuple):
+def flatten_cells(named: dict, args: tuple):
     """Broadcast the per-cell inputs to one shape and flatten them (copies; inputs untouched)."""
     arrays = {}
     for name, value in named.items():
@@ -554,7 +554,7 @@ def _flatten(named: dict, args: tuple):
     return shape, flat, tuple(np.broadcast_to(a, shape).ravel() for a in extra)
 
 
-def _setup(law: _Law, flat: dict, args: tuple):
+def setup_cells(law: _Law, flat: dict, args: tuple):
     """Scaled cells of the valid (finite) entries, their indices and the initial guess."""
     h, prefactor = flat["thickness"], flat["prefactor"]
     count = 2 * law.p + 3 if law.p is not None else 2  # moments mu_0 .. mu_{n+1} or mu_0, mu_1
@@ -562,7 +562,7 @@ def _setup(law: _Law, flat: dict, args: tuple):
         if law.profile is None:
             mean = prefactor
         else:
-            x, w = _gauss(max(law.nodes, GAUSS_ORDER))
+            x, w = gauss_legendre(max(law.nodes, GAUSS_ORDER))
             sigma = 0.5 * x[:, None]
             values = prefactor * np.asarray(law.profile(h * (sigma + 0.5), *args), dtype=float)
             mean = 0.5 * (w @ values)
@@ -613,7 +613,7 @@ def _setup(law: _Law, flat: dict, args: tuple):
     return cells, index, m_e, m_n
 
 
-def _warn_failures(converged: np.ndarray, solved: int, max_iterations: int) -> None:
+def warn_failures(converged: np.ndarray, solved: int, max_iterations: int) -> None:
     failed = solved - int(np.count_nonzero(converged))
     if failed:
         warnings.warn(

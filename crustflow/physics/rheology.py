@@ -69,16 +69,16 @@ from crustflow.physics.powerlaw_solver import PEAK_NEWTON_STEPS as PEAK_NEWTON_S
 from crustflow.physics.powerlaw_solver import PEAK_SAMPLES as PEAK_SAMPLES
 from crustflow.physics.powerlaw_solver import SOLVER_RTOL as SOLVER_RTOL
 from crustflow.physics.powerlaw_solver import (
-    _abs_power,
-    _flatten,
-    _law_config,
-    _newton,
-    _outputs,
-    _poly_coefficients,
-    _setup,
-    _shape_factor,
-    _velocity,
-    _warn_failures,
+    abs_power,
+    flatten_cells,
+    law_config,
+    poly_coefficients,
+    scaled_velocity,
+    setup_cells,
+    shape_factor,
+    solution_fields,
+    solve_newton,
+    warn_failures,
 )
 
 __all__ = [
@@ -270,8 +270,8 @@ def power_law_channel(
     .. [3] Dennis, J. E. & Schnabel, R. B. (1996). *Numerical Methods for Unconstrained
        Optimization and Nonlinear Equations*, SIAM, section 6.3 (from memory).
     """
-    law = _law_config(stress_exponent, prefactor_profile, quadrature_nodes)
-    shape, flat, args = _flatten(
+    law = law_config(stress_exponent, prefactor_profile, quadrature_nodes)
+    shape, flat, args = flatten_cells(
         dict(
             drive_east=drive_east,
             drive_north=drive_north,
@@ -293,18 +293,20 @@ def power_law_channel(
     for start in range(0, size, step):
         part = slice(start, start + step)
         block = {k: v[part] for k, v in flat.items()}
-        cells, index, m_e, m_n = _setup(law, block, tuple(a[part] for a in args))
+        cells, index, m_e, m_n = setup_cells(law, block, tuple(a[part] for a in args))
         if index.size == 0:
             continue
-        m_e, m_n, converged, iterations, residual = _newton(cells, law, m_e, m_n, max_iterations)
+        m_e, m_n, converged, iterations, residual = solve_newton(
+            cells, law, m_e, m_n, max_iterations
+        )
         where = start + index
-        for name, value in _outputs(cells, law, m_e, m_n).items():
+        for name, value in solution_fields(cells, law, m_e, m_n).items():
             out[name][where] = value
         out["converged"][where] = converged
         out["iterations"][where] = iterations
         out["wall_velocity_residual"][where] = residual * cells.velocity
         solved += index.size
-    _warn_failures(out["converged"], solved, max_iterations)
+    warn_failures(out["converged"], solved, max_iterations)
     return PowerLawSolution(**{k: v.reshape(shape) for k, v in out.items()})
 
 
@@ -366,7 +368,7 @@ def power_law_profile(
     ----------
     .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 6.2.
     """
-    law = _law_config(stress_exponent, prefactor_profile, quadrature_nodes)
+    law = law_config(stress_exponent, prefactor_profile, quadrature_nodes)
     named = dict(
         drive_east=drive_east,
         drive_north=drive_north,
@@ -375,10 +377,10 @@ def power_law_profile(
         wall_east=wall_east,
         wall_north=wall_north,
     )
-    shape, flat, args = _flatten(named, tuple(profile_args))
-    cells, index, m_e, m_n = _setup(law, flat, args)
-    m_e, m_n, converged, _, _ = _newton(cells, law, m_e, m_n, max_iterations)
-    _warn_failures(converged, index.size, max_iterations)
+    shape, flat, args = flatten_cells(named, tuple(profile_args))
+    cells, index, m_e, m_n = setup_cells(law, flat, args)
+    m_e, m_n, converged, _, _ = solve_newton(cells, law, m_e, m_n, max_iterations)
+    warn_failures(converged, index.size, max_iterations)
     z = np.asarray(zeta, dtype=np.float64)
     full = np.broadcast_shapes(z.shape, shape)
     size = int(np.prod(full, dtype=np.int64))
@@ -391,10 +393,10 @@ def power_law_profile(
     part, me, mn = cells.take(pos), m_e[pos], m_n[pos]
     sigma = np.broadcast_to(z, full).ravel()[ok] / part.h - 0.5
     exact = law.p is not None and law.profile is None
-    coefficients = _poly_coefficients(part, law, me, mn) if exact else None
-    v_e, v_n = _velocity(part, law, me, mn, sigma, coefficients)
+    coefficients = poly_coefficients(part, law, me, mn) if exact else None
+    v_e, v_n = scaled_velocity(part, law, me, mn, sigma, coefficients)
     t_e, t_n = me + part.g_e * sigma, mn + part.g_n * sigma
-    fluidity = _shape_factor(part, law, sigma) * _abs_power(t_e * t_e + t_n * t_n, law.n)
+    fluidity = shape_factor(part, law, sigma) * abs_power(t_e * t_e + t_n * t_n, law.n)
     results = [np.full(size, np.nan) for _ in range(5)]
     with np.errstate(divide="ignore"):
         values = (

@@ -23,7 +23,7 @@ from crustflow.errors import CrustflowInputError
 MAX_TEMPERATURE = 2000.0
 
 
-def _check_temperature(temperature: np.ndarray | float, name: str) -> np.ndarray:
+def check_temperature(temperature: np.ndarray | float, name: str) -> np.ndarray:
     """Return ``temperature`` as a float array after checking 0 < T <= MAX_TEMPERATURE (NaN ok)."""
     t = np.asarray(temperature, dtype=np.float64)
     if np.any(t <= 0.0):
@@ -75,8 +75,8 @@ def temperature_profile(
     ----------
     .. [1] Turcotte, D. L. & Schubert, G. (2002). *Geodynamics*, 2nd ed., section 4-8.
     """
-    top = _check_temperature(top_K, "top_K")
-    base = _check_temperature(base_K, "base_K")
+    top = check_temperature(top_K, "top_K")
+    base = check_temperature(base_K, "base_K")
     return base + (top - base) * (np.asarray(zeta) / np.asarray(thickness))
 
 
@@ -140,7 +140,7 @@ def steady_geotherm(
     k = np.asarray(conductivity, dtype=np.float64)
     h0 = np.asarray(heat_production, dtype=np.float64)
     h_r = np.asarray(length_scale, dtype=np.float64)
-    t0 = _check_temperature(surface_temperature, "surface_temperature")
+    t0 = check_temperature(surface_temperature, "surface_temperature")
     if np.any(k <= 0.0) or np.any(h_r <= 0.0):
         raise CrustflowInputError(
             "conductivity (W/(m K)) and length_scale (m) must be positive; typical crust: 2.5 "

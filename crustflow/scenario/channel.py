@@ -135,7 +135,7 @@ class ChannelSetup:
         return out
 
 
-def _grid_or_value(
+def grid_or_value(
     value, key: str, kind: str, base: Path, name: str, grids: dict, allow_log10: bool = False
 ):
     """A scalar in SI, or None after registering a grid in ``grids``."""
@@ -222,7 +222,7 @@ def _parse_thickness(raw: dict, base: Path, grids: dict) -> float | None:
         return None
     if "thickness" not in raw:
         raise CrustflowInputError('the scenario needs [channel] thickness = "15 km" (or a grid)')
-    return _grid_or_value(
+    return grid_or_value(
         raw["thickness"], "channel.thickness", "length", base, "channel_thickness", grids
     )
 
@@ -241,7 +241,7 @@ def _parse_viscosity(raw: dict, rheology: str, base: Path, grids: dict) -> float
             'the scenario needs [channel] viscosity = "1e19 Pa*s" (or a '
             "grid) for a newtonian channel"
         )
-    return _grid_or_value(
+    return grid_or_value(
         raw["viscosity"],
         "channel.viscosity",
         "viscosity",
@@ -374,10 +374,10 @@ def _parse_temperature(table: dict, base: Path, grids: dict):
                 "[channel.temperature] needs both top and base, e.g. top = "
                 '"550 degC", base = "750 degC"'
             )
-        top = _grid_or_value(
+        top = grid_or_value(
             table["top"], "channel.temperature.top", "temperature", base, "temperature_top", grids
         )
-        bottom = _grid_or_value(
+        bottom = grid_or_value(
             table["base"],
             "channel.temperature.base",
             "temperature",
@@ -394,7 +394,7 @@ def _parse_temperature(table: dict, base: Path, grids: dict):
             'surface_heat_flow = "65 mW/m^2" for a steady geotherm'
         )
     geotherm = dict(GEOTHERM_DEFAULTS)
-    geotherm["surface_heat_flow"] = _grid_or_value(
+    geotherm["surface_heat_flow"] = grid_or_value(
         table["surface_heat_flow"],
         "channel.temperature.surface_heat_flow",
         "heat_flow",

@@ -16,8 +16,8 @@ from crustflow.scenario.ensemble_spec import (
     VARIABLE_KEYS,
     Distribution,
     EnsembleSpec,
+    VariedKey,
     VectorDistribution,
-    _Key,
 )
 from crustflow.scenario.parameters import ModelParameters
 from crustflow.units import parse_quantity
@@ -46,19 +46,19 @@ WHOLE_GRID = ("thin_channel_warning",)
 # parsing
 
 
-def _unknown(key: str, valid, where: str, extra: str = "") -> CrustflowInputError:
+def unknown_key_error(key: str, valid, where: str, extra: str = "") -> CrustflowInputError:
     close = difflib.get_close_matches(str(key), list(valid), n=1, cutoff=0.5)
     hint = f"did you mean '{close[0]}'?" if close else f"valid keys: {', '.join(valid)}"
     return CrustflowInputError(f"unknown key '{key}' in {where}; {hint}{extra}")
 
 
-def _check_keys(table: dict, valid, where: str) -> None:
+def check_keys(table: dict, valid, where: str) -> None:
     for key in table:
         if key not in valid:
-            raise _unknown(key, valid, where)
+            raise unknown_key_error(key, valid, where)
 
 
-def _integer(value, key: str, example: str, least: int) -> int:
+def parse_integer(value, key: str, example: str, least: int) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or value < least:
         raise CrustflowInputError(
             f"{key} = {value!r} is not an integer of at least {least}; write e.g. {example}"
@@ -113,18 +113,18 @@ def parse_ensemble(raw: dict, parameters: ModelParameters) -> EnsembleSpec:
     """
     if not isinstance(raw, dict):
         raise CrustflowInputError("[ensemble] must be a table (an [ensemble] section)")
-    _check_keys(raw, ("members", "seed", "sampling", "vary", "report"), "[ensemble]")
+    check_keys(raw, ("members", "seed", "sampling", "vary", "report"), "[ensemble]")
     if "members" not in raw:
         raise CrustflowInputError(
             "[ensemble] needs members = N (an integer of at least 2, e.g. 1000)"
         )
-    members = _integer(raw["members"], "ensemble.members", "members = 1000", 2)
+    members = parse_integer(raw["members"], "ensemble.members", "members = 1000", 2)
     if "seed" not in raw:
         raise CrustflowInputError(
             "[ensemble] needs seed = N (an integer, e.g. seed = 20261201) so that the ensemble can "
             "be repeated exactly"
         )
-    seed = _integer(raw["seed"], "ensemble.seed", "seed = 20261201", 0)
+    seed = parse_integer(raw["seed"], "ensemble.seed", "seed = 20261201", 0)
     sampling = raw.get("sampling", "latin-hypercube")
     if sampling not in SAMPLING:
         raise CrustflowInputError(
@@ -137,11 +137,11 @@ def parse_ensemble(raw: dict, parameters: ModelParameters) -> EnsembleSpec:
             '[ensemble.vary] is missing or empty; vary at least one value, e.g. "channel.viscosity" '
             '= { distribution = "log-uniform", low = "1e18 Pa*s", high = "1e20 Pa*s" }'
         )
-    vary = {key: _parse_varied(key, table, parameters) for key, table in vary_raw.items()}
+    vary = {key: parse_varied(key, table, parameters) for key, table in vary_raw.items()}
     rep = raw.get("report", {})
     if not isinstance(rep, dict):
         raise CrustflowInputError("ensemble.report must be a table ([ensemble.report])")
-    _check_keys(rep, ("percentiles", "variables", "exceedance"), "[ensemble.report]")
+    check_keys(rep, ("percentiles", "variables", "exceedance"), "[ensemble.report]")
     percentiles = _parse_percentiles(rep.get("percentiles", list(DEFAULT_PERCENTILES)))
     variables = rep.get("variables", list(DEFAULT_VARIABLES))
     if not isinstance(variables, list) or not variables:
@@ -167,10 +167,10 @@ def parse_ensemble(raw: dict, parameters: ModelParameters) -> EnsembleSpec:
     )
 
 
-def _parse_varied(key: str, table, parameters: ModelParameters, section: str = "ensemble.vary"):
+def parse_varied(key: str, table, parameters: ModelParameters, section: str = "ensemble.vary"):
     """One varied key of ``[<section>]`` (``ensemble.vary``; ``fit.parameters`` reuses it)."""
     if key not in VARIABLE_KEYS:
-        raise _unknown(
+        raise unknown_key_error(
             key,
             VARIABLE_KEYS,
             f"[{section}]",
@@ -190,7 +190,7 @@ def _parse_varied(key: str, table, parameters: ModelParameters, section: str = "
             f'{where} must be a table, e.g. "{key}" = {{ distribution = "uniform", low = "...", '
             'high = "..." }'
         )
-    _check_keys(
+    check_keys(
         table, ("distribution",) + tuple(k for n, o in DISTRIBUTIONS.values() for k in n + o), where
     )
     kind = table.get("distribution")
@@ -231,7 +231,7 @@ def _parse_varied(key: str, table, parameters: ModelParameters, section: str = "
     )
 
 
-def _distribution(kind: str, values: dict, where: str, part: str, spec: _Key) -> Distribution:
+def _distribution(kind: str, values: dict, where: str, part: str, spec: VariedKey) -> Distribution:
     si = {
         name: parse_quantity(value, f"{where}.{name}{part}", spec.kind)
         for name, value in values.items()
@@ -267,7 +267,7 @@ def _distribution(kind: str, values: dict, where: str, part: str, spec: _Key) ->
     return Distribution(kind, **si)
 
 
-def _example_min(spec: _Key) -> str:
+def _example_min(spec: VariedKey) -> str:
     return {
         "length": "5 km",
         "viscosity": "1e17 Pa*s",
@@ -305,7 +305,7 @@ def _report_variable(name, where: str) -> str:
         )
     valid = [v for v in VARIABLES if v not in CIRCULAR + WHOLE_GRID]
     if not isinstance(name, str) or name not in VARIABLES:
-        raise _unknown(name, valid, where)
+        raise unknown_key_error(name, valid, where)
     return name
 
 
@@ -316,7 +316,7 @@ def _parse_exceedance(table) -> tuple[str, tuple[float, ...]]:
             f'{where} must be a table, e.g. {{ variable = "uplift_rate", thresholds = '
             '["1 mm/yr"] }'
         )
-    _check_keys(table, ("variable", "thresholds"), where)
+    check_keys(table, ("variable", "thresholds"), where)
     if "variable" not in table or "thresholds" not in table:
         raise CrustflowInputError(
             f'{where} needs variable and thresholds, e.g. {{ variable = "uplift_rate", '
@@ -328,7 +328,7 @@ def _parse_exceedance(table) -> tuple[str, tuple[float, ...]]:
         raise CrustflowInputError(
             f'{where}.thresholds must be a non-empty list of values with units, e.g. ["1 mm/yr"]'
         )
-    return name, tuple(_parse_threshold(v, f"{where}.thresholds", name) for v in values)
+    return name, tuple(parse_threshold(v, f"{where}.thresholds", name) for v in values)
 
 
 #: pint spellings of the UDUNITS units of VARIABLES.
@@ -344,7 +344,7 @@ _PINT_UNITS = {
 }
 
 
-def _parse_threshold(value, key: str, name: str) -> float:
+def parse_threshold(value, key: str, name: str) -> float:
     """A threshold of variable ``name`` in SI, from a string with units (a number if unitless)."""
     var = VARIABLES[name]
     if var.units == "1":

@@ -33,7 +33,7 @@ U_LOW, U_HIGH = float(np.finfo(float).tiny), float(np.nextafter(1.0, 0.0))
 
 
 @dataclass(frozen=True)
-class _Key:
+class VariedKey:
     fields: tuple[str, ...]  #: ModelParameters field(s)
     kind: str  #: units kind of crustflow.units.DIMENSIONS
     unit: str  #: practical unit of the sampled values (column headers)
@@ -42,18 +42,20 @@ class _Key:
 
 
 #: Scenario keys an ensemble may vary: fields of ModelParameters, units and physical bounds.
-VARIABLE_KEYS: dict[str, _Key] = {
-    "channel.viscosity": _Key(("viscosity",), "viscosity", "Pa_s", 1.0, "positive"),
-    "channel.thickness": _Key(("channel_thickness",), "length", "km", 1e-3, "positive"),
-    "densities.crust": _Key(("rho_crust",), "density", "kg_per_m3", 1.0, "positive"),
-    "densities.mantle": _Key(("rho_mantle",), "density", "kg_per_m3", 1.0, "positive"),
-    "densities.water": _Key(("rho_water",), "density", "kg_per_m3", 1.0, "non-negative"),
-    "densities.channel": _Key(("rho_channel",), "density", "kg_per_m3", 1.0, "positive"),
-    "walls.upper_velocity": _Key(
+VARIABLE_KEYS: dict[str, VariedKey] = {
+    "channel.viscosity": VariedKey(("viscosity",), "viscosity", "Pa_s", 1.0, "positive"),
+    "channel.thickness": VariedKey(("channel_thickness",), "length", "km", 1e-3, "positive"),
+    "densities.crust": VariedKey(("rho_crust",), "density", "kg_per_m3", 1.0, "positive"),
+    "densities.mantle": VariedKey(("rho_mantle",), "density", "kg_per_m3", 1.0, "positive"),
+    "densities.water": VariedKey(("rho_water",), "density", "kg_per_m3", 1.0, "non-negative"),
+    "densities.channel": VariedKey(("rho_channel",), "density", "kg_per_m3", 1.0, "positive"),
+    "walls.upper_velocity": VariedKey(
         ("wall_east", "wall_north"), "velocity", "mm_per_yr", 1e3 * SECONDS_PER_YEAR, None
     ),
-    "constants.gravity": _Key(("gravity",), "acceleration", "m_per_s2", 1.0, "positive"),
-    "grids.reference_thickness": _Key(("reference_thickness",), "length", "km", 1e-3, "positive"),
+    "constants.gravity": VariedKey(("gravity",), "acceleration", "m_per_s2", 1.0, "positive"),
+    "grids.reference_thickness": VariedKey(
+        ("reference_thickness",), "length", "km", 1e-3, "positive"
+    ),
 }
 
 

@@ -23,11 +23,11 @@ from crustflow.errors import CrustflowInputError
 from crustflow.scenario.ensemble import (
     CIRCULAR,
     WHOLE_GRID,
-    _check_keys,
-    _integer,
-    _parse_threshold,
-    _parse_varied,
-    _unknown,
+    check_keys,
+    parse_integer,
+    parse_threshold,
+    parse_varied,
+    unknown_key_error,
 )
 from crustflow.scenario.ensemble_spec import EnsembleSpec
 from crustflow.scenario.parameters import ModelParameters
@@ -256,7 +256,7 @@ def parse_fit(raw: dict, parameters: ModelParameters, base: Path) -> FitSpec:
         raise CrustflowInputError(
             "[fit] must be a table with [[fit.observations]] and [fit.sampler]"
         )
-    _check_keys(raw, ("observations", "parameters", "sampler", "variables"), "[fit]")
+    check_keys(raw, ("observations", "parameters", "sampler", "variables"), "[fit]")
     sets = raw.get("observations")
     if not isinstance(sets, list) or not sets or not all(isinstance(s, dict) for s in sets):
         raise CrustflowInputError(
@@ -279,7 +279,7 @@ def parse_fit(raw: dict, parameters: ModelParameters, base: Path) -> FitSpec:
             'high = "1e21 Pa*s" }'
         )
     priors = {
-        key: _parse_varied(key, table, parameters, section="fit.parameters")
+        key: parse_varied(key, table, parameters, section="fit.parameters")
         for key, table in priors.items()
     }
     sampler = _sampler(raw.get("sampler"))
@@ -305,13 +305,13 @@ def _variable(name, where: str) -> str:
         )
     valid = [v for v in VARIABLES if v not in CIRCULAR + WHOLE_GRID and not VARIABLES[v].flag]
     if not isinstance(name, str) or name not in valid:
-        raise _unknown(name, valid, where)
+        raise unknown_key_error(name, valid, where)
     return name
 
 
 def _observation_set(table: dict, index: int, base: Path) -> ObservationSet:
     where = f"fit.observations[{index}]"
-    _check_keys(table, OBSERVATION_KEYS, f"[[fit.observations]] set {index}")
+    check_keys(table, OBSERVATION_KEYS, f"[[fit.observations]] set {index}")
     if ("file" in table) == ("grid" in table):
         raise CrustflowInputError(
             f'{where}: give either file = "points.gpkg" (points) or grid = "uplift.tif" '
@@ -328,7 +328,7 @@ def _observation_set(table: dict, index: int, base: Path) -> ObservationSet:
         raise CrustflowInputError(
             f'{where} needs units = "..." for its values and errors, e.g. units = "mm/yr"'
         )
-    scale = _parse_threshold(f"1 {units.strip()}", f"{where}.units", variable)
+    scale = parse_threshold(f"1 {units.strip()}", f"{where}.units", variable)
     label = table.get("name", path.stem)
     if not isinstance(label, str) or not label:
         raise CrustflowInputError(f'{where}.name must be a text, e.g. name = "gnss"')
@@ -371,7 +371,7 @@ def _observation_set(table: dict, index: int, base: Path) -> ObservationSet:
 def _spacing(table: dict, where: str) -> dict:
     out: dict = {}
     if "decimate" in table:
-        out["decimate"] = _integer(table["decimate"], f"{where}.decimate", "decimate = 4", 1)
+        out["decimate"] = parse_integer(table["decimate"], f"{where}.decimate", "decimate = 4", 1)
     if "correlation_length" in table:
         out["correlation_length"] = parse_quantity(
             table["correlation_length"], f"{where}.correlation_length", "length"
@@ -396,7 +396,7 @@ def _has_number(text: str) -> bool:
 
 
 def _positive_sigma(text: str, key: str, variable: str) -> float:
-    value = _parse_threshold(text, key, variable)
+    value = parse_threshold(text, key, variable)
     if not value > 0:
         raise CrustflowInputError(f'{key} = {text!r} must be positive, e.g. "0.3 mm/yr"')
     return value
@@ -415,8 +415,8 @@ def _sampler(raw) -> SamplerSettings:
             "[fit.sampler] needs seed = N (an integer, e.g. seed = 11) so that the fit can be "
             "repeated exactly"
         )
-    _check_keys(raw, ("seed",) + tuple(DEFAULT_SAMPLER), "[fit.sampler]")
-    kw = {"seed": _integer(raw["seed"], "fit.sampler.seed", "seed = 11", 0)}
+    check_keys(raw, ("seed",) + tuple(DEFAULT_SAMPLER), "[fit.sampler]")
+    kw = {"seed": parse_integer(raw["seed"], "fit.sampler.seed", "seed = 11", 0)}
     for key, least in (
         ("walkers", 4),
         ("steps", 2),
@@ -425,7 +425,7 @@ def _sampler(raw) -> SamplerSettings:
         ("predictive_draws", 2),
     ):
         if key in raw:
-            kw[key] = _integer(
+            kw[key] = parse_integer(
                 raw[key], f"fit.sampler.{key}", f"{key} = {DEFAULT_SAMPLER[key]}", least
             )
     if kw.get("walkers", DEFAULT_SAMPLER["walkers"]) % 2:

@@ -14,7 +14,7 @@ from pathlib import Path
 
 from crustflow.errors import CrustflowInputError
 from crustflow.physics.column import PLACEMENTS
-from crustflow.scenario.channel import _grid_or_value
+from crustflow.scenario.channel import grid_or_value
 from crustflow.units import parse_quantity
 
 __all__ = ["LoadSetup", "parse_load", "LOAD_KEYS"]
@@ -113,7 +113,7 @@ def parse_load(raw: dict, channel: dict, base: Path) -> LoadSetup:
     layers = _parse_roof(raw.get("roof", {}), base, grids)
     crust = raw.get("densities", {}).get("crust")
     if isinstance(crust, dict):
-        _grid_or_value(crust, "densities.crust", "density", base, "rho_crust", grids)
+        grid_or_value(crust, "densities.crust", "density", base, "rho_crust", grids)
     placement, top, base_depth = _parse_placement(channel, base, grids)
     return LoadSetup(
         layers=tuple(layers),
@@ -145,10 +145,10 @@ def _parse_roof(roof: dict, base: Path, grids: dict) -> list[tuple]:
             )
         name = str(layer.get("name", f"layer {i + 1}"))
         where = f"roof.layers[{name}]"
-        thickness = _grid_or_value(
+        thickness = grid_or_value(
             layer["thickness"], f"{where}.thickness", "length", base, f"roof_thickness_{i}", grids
         )
-        density = _grid_or_value(
+        density = grid_or_value(
             layer["density"], f"{where}.density", "density", base, f"roof_density_{i}", grids
         )
         if thickness is not None and thickness < 0:
@@ -188,7 +188,7 @@ def _parse_placement(channel: dict, base: Path, grids: dict):
                 f'e.g. {key} = {{ grid = "{key}.tif", units = "km" }}'
             )
         if key in channel:
-            depths[key] = _grid_or_value(channel[key], f"channel.{key}", "length", base, key, grids)
+            depths[key] = grid_or_value(channel[key], f"channel.{key}", "length", base, key, grids)
     top, base_depth = depths["top_depth"], depths["base_depth"]
     if top is not None and base_depth is not None and base_depth <= top:
         raise CrustflowInputError(

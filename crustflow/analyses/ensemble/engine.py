@@ -13,7 +13,12 @@ import numpy as np
 
 from crustflow.analyses.budgets import budget_table, read_features
 from crustflow.analyses.ensemble import report
-from crustflow.analyses.ensemble.fast import _ON_VALID, _block_basis, _Chunk, _Scalars
+from crustflow.analyses.ensemble.fast import (
+    ON_VALID_FIELDS,
+    MemberChunk,
+    MemberScalars,
+    block_basis,
+)
 from crustflow.engine.blocks import Block, BlockReader, block_fields
 from crustflow.engine.checks import CellInputCheck, ColumnCheck, GridChecks
 from crustflow.errors import CrustflowInputError
@@ -24,7 +29,7 @@ from crustflow.variables import to_practical
 # reading strips: the engine's one block reader
 
 
-class _Grid(BlockReader):
+class EnsembleGrid(BlockReader):
     """The scenario's grids, read strip by strip with halo rows (crustflow.engine.blocks)."""
 
     @property
@@ -36,7 +41,7 @@ class _Grid(BlockReader):
         return self.grids
 
 
-def _member_fields(strip: Block, parameters, scenario, wanted) -> dict[str, np.ndarray]:
+def member_fields(strip: Block, parameters, scenario, wanted) -> dict[str, np.ndarray]:
     """The fields of one member on one strip's own rows (the fallback), as the map computes them.
 
     The strip is checked as :mod:`crustflow.engine.strips` checks it: a channel not thinner than the
@@ -70,7 +75,7 @@ def _member_fields(strip: Block, parameters, scenario, wanted) -> dict[str, np.n
     return {n: si[n] for n in wanted}
 
 
-def _scan(grid: _Grid, rows: int, bar) -> dict:
+def scan_grid(grid: EnsembleGrid, rows: int, bar) -> dict:
     """First pass: the input checks of a run and the extremes the thickness check needs."""
     checks = GridChecks(grid.sources)
     cells = None
@@ -99,9 +104,9 @@ def _scan(grid: _Grid, rows: int, bar) -> dict:
     return low
 
 
-def _check_thickness(members, low: dict, airy: bool, varied: bool) -> None:
+def check_thickness(members, low: dict, airy: bool, varied: bool) -> None:
     """Every member's channel must be thinner than its thinnest crust (as crustflow.solve checks)."""
-    s = _Scalars.of(members, airy)
+    s = MemberScalars.of(members, airy)
     if airy:
         thinnest = s.t0 + (s.a if low["H"] >= 0 else s.b) * low["H"]
     else:
@@ -126,32 +131,32 @@ def _check_thickness(members, low: dict, airy: bool, varied: bool) -> None:
 # the member loops of the fast path and the fallback
 
 
-def _fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, bar) -> None:
-    scalars = _Scalars.of(members, grid.airy)
+def fast_maps(grid, members, needed, reducer, writer, rows, chunk, buffers, bar) -> None:
+    scalars = MemberScalars.of(members, grid.airy)
     for strip in grid.blocks(rows):
         T = None if grid.airy else strip.crust_thickness(grid.scenario.parameters)
-        basis = _block_basis(strip.elevation, T, strip.geometry)
+        basis = block_basis(strip.elevation, T, strip.geometry)
         flat = {k: v[strip.own].ravel() for k, v in basis.items()}
         cells = np.flatnonzero(flat["valid"])
         reducer.start(flat["valid"].size)
         for c0 in range(0, cells.size, chunk):
             idx = cells[c0 : c0 + chunk]
-            part = _Chunk({k: v[idx] for k, v in flat.items()}, scalars, buffers)
+            part = MemberChunk({k: v[idx] for k, v in flat.items()}, scalars, buffers)
             for name in needed:
-                rows_ok = part.columns["valid" if name in _ON_VALID else "live"]
+                rows_ok = part.columns["valid" if name in ON_VALID_FIELDS else "live"]
                 reducer.add(name, part.values(name), idx, rows_ok)
             bar.update(idx.size)
         bar.update(flat["valid"].size - cells.size)
         writer.write(strip.r0, strip.r1, reducer.maps)
 
 
-def _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> None:
+def fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> None:
     M = len(members)
     for strip in grid.blocks(rows):
         n = (strip.r1 - strip.r0) * grid.width
         stacks = {name: np.empty((M, n)) for name in needed}
         for m, p in enumerate(members):
-            si = _member_fields(strip, p, grid.scenario, needed)
+            si = member_fields(strip, p, grid.scenario, needed)
             for name in needed:
                 stacks[name][m] = si[name].ravel()
             bar.update(1)
@@ -169,7 +174,7 @@ def _fallback_maps(grid, members, needed, reducer, writer, rows, chunk, bar) -> 
 # budgets
 
 
-def _read_features(scenario, crs) -> dict:
+def read_budget_features(scenario, crs) -> dict:
 
     out = {}
     for kind in ("sections", "regions"):
@@ -179,13 +184,13 @@ def _read_features(scenario, crs) -> dict:
     return out
 
 
-def _member_budgets(grid, members, features, fast: bool, rows: int, memory: int, bar):
+def budgets_by_member(grid, members, features, fast: bool, rows: int, memory: int, bar):
     """Volume flux of every feature for every member (DataFrame, m^3/yr, one column per feature)."""
     import pandas as pd
 
     wanted = ("flux_east", "flux_north", "thickening_rate")
     if fast:
-        s = _Scalars.of(members, grid.airy)
+        s = MemberScalars.of(members, grid.airy)
         k = -(s.h**3) / (12.0 * s.eta)
         coefs = [0.5 * s.h * s.ue, 0.5 * s.h * s.un] + [k * gm for gm in s.gamma]
         jobs = [("one", None), (None, "one")] + [(f"{v}_east", f"{v}_north") for v in s.vectors]
@@ -193,7 +198,7 @@ def _member_budgets(grid, members, features, fast: bool, rows: int, memory: int,
         def fields(strip, j, cache):
             if "basis" not in cache:
                 T = None if grid.airy else strip.crust_thickness(grid.scenario.parameters)
-                cache["basis"] = _block_basis(strip.elevation, T, strip.geometry)
+                cache["basis"] = block_basis(strip.elevation, T, strip.geometry)
             base = cache["basis"]
             live = base["live"]
             east, north = jobs[j]
@@ -206,7 +211,7 @@ def _member_budgets(grid, members, features, fast: bool, rows: int, memory: int,
     else:
 
         def fields(strip, j, cache):
-            si = _member_fields(strip, members[j], grid.scenario, wanted)
+            si = member_fields(strip, members[j], grid.scenario, wanted)
             return [si[n] for n in wanted]
 
         n_jobs = len(members)

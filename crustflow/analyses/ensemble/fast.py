@@ -28,7 +28,7 @@ from crustflow.scenario.ensemble_spec import EnsembleSpec
 
 
 @dataclass(frozen=True)
-class _Scalars:
+class MemberScalars:
     """Per-member scalars of the fast path, arrays over members (SI)."""
 
     h: np.ndarray
@@ -46,14 +46,14 @@ class _Scalars:
     airy: bool
 
     @classmethod
-    def of(cls, members, airy: bool) -> _Scalars:
+    def of(cls, members, airy: bool) -> MemberScalars:
         def get(name):  # None (a parameter the rheology does not use) becomes NaN
             return np.array([getattr(p, name) for p in members], dtype=float)
 
         return cls.of_values(get, airy)
 
     @classmethod
-    def of_values(cls, get, airy: bool) -> _Scalars:
+    def of_values(cls, get, airy: bool) -> MemberScalars:
         """Scalars from ``get(field)``: the values of a ModelParameters field over the members."""
         rho_c, rho_m, rho_w = get("rho_crust"), get("rho_mantle"), get("rho_water")
         zero = np.zeros_like(rho_c)
@@ -95,7 +95,7 @@ class _Scalars:
         return [gp, gm] if self.airy else [self.g * d, gp, gm]
 
 
-def _terms(name: str, s: _Scalars) -> list[tuple[str, np.ndarray]]:
+def _terms(name: str, s: MemberScalars) -> list[tuple[str, np.ndarray]]:
     """(base map, per-member coefficient) pairs whose sum is variable ``name`` (SI)."""
     k = -(s.h**3) / (12.0 * s.eta)
     w_e, w_n = 0.5 * s.h * s.ue, 0.5 * s.h * s.un
@@ -157,10 +157,15 @@ SOLUTION = tuple(
 #: Everything the fast path computes; other variables need the fallback.
 FAST_VARIABLES = LINEAR + SOLUTION + ("flux_magnitude",)
 #: Variables defined wherever the inputs are (the rest also need a finite driving gradient).
-_ON_VALID = ("crust_thickness", "channel_top_depth", "overburden_pressure", "channel_thickness")
+ON_VALID_FIELDS = (
+    "crust_thickness",
+    "channel_top_depth",
+    "overburden_pressure",
+    "channel_thickness",
+)
 
 
-def _block_basis(H: np.ndarray, T: np.ndarray | None, geom) -> dict[str, np.ndarray]:
+def block_basis(H: np.ndarray, T: np.ndarray | None, geom) -> dict[str, np.ndarray]:
     """Base maps of one block of rows (a grid, or a strip with halo rows), SI.
 
     ``T`` is the crustal thickness grid (None in the Airy case). Returns the masks ``valid`` and
@@ -190,7 +195,7 @@ def _block_basis(H: np.ndarray, T: np.ndarray | None, geom) -> dict[str, np.ndar
     return out
 
 
-class _Buffers:
+class MemberBuffers:
     """Named (cells, members) work arrays, allocated once and reused: fresh arrays of this size cost
     more in page faults than the arithmetic done on them."""
 
@@ -204,10 +209,10 @@ class _Buffers:
         return arr[:cells]
 
 
-class _Chunk:
+class MemberChunk:
     """Member values of a chunk of cells on the fast path, as (cells, members) float64 arrays."""
 
-    def __init__(self, columns: dict, scalars: _Scalars, buffers: _Buffers) -> None:
+    def __init__(self, columns: dict, scalars: MemberScalars, buffers: MemberBuffers) -> None:
         self.columns, self.s, self.buf = columns, scalars, buffers
         self.cells = columns["valid"].size
         self._cache: dict[str, np.ndarray] = {}
@@ -246,7 +251,7 @@ class _Chunk:
             vals = self._solution()[name]
         else:
             raise KeyError(f"the fast path does not compute {name}")
-        rows = self.columns["valid" if name in _ON_VALID else "live"]
+        rows = self.columns["valid" if name in ON_VALID_FIELDS else "live"]
         vals[~rows] = np.nan
         if keep:
             self._cache[name] = vals
@@ -339,12 +344,12 @@ def fast_fields(
             "overburden_pressure",
         )
     )
-    basis = _block_basis(H, T, geometry)
+    basis = block_basis(H, T, geometry)
     cells = np.flatnonzero(basis["valid"])
-    chunk = _Chunk(
+    chunk = MemberChunk(
         {k: v.ravel()[cells] for k, v in basis.items()},
-        _Scalars.of(members, airy),
-        _Buffers(len(members)),
+        MemberScalars.of(members, airy),
+        MemberBuffers(len(members)),
     )
     out = {}
     for name in names:

@@ -45,19 +45,19 @@ from pathlib import Path
 
 from crustflow.analyses.ensemble import report
 from crustflow.analyses.ensemble.engine import (
-    _check_thickness,
-    _fallback_maps,
-    _fast_maps,
-    _Grid,
-    _member_budgets,
-    _read_features,
-    _scan,
+    EnsembleGrid,
+    budgets_by_member,
+    check_thickness,
+    fallback_maps,
+    fast_maps,
+    read_budget_features,
+    scan_grid,
 )
 from crustflow.analyses.ensemble.fast import FAST_VARIABLES as FAST_VARIABLES
 from crustflow.analyses.ensemble.fast import LINEAR as LINEAR
 from crustflow.analyses.ensemble.fast import (
     SOLUTION,
-    _Buffers,
+    MemberBuffers,
     fast_fields,
     fast_path_obstacle,
 )
@@ -186,14 +186,14 @@ def run_ensemble(
     fast, obstacle = _choose_path(scenario, spec, fast)
     members, samples = sample_members(spec, scenario.parameters)
     clock.lap("sample members")
-    grid = _Grid(scenario)
+    grid = EnsembleGrid(scenario)
     try:
         plan = _plan(grid, spec, fast, strip_rows, memory_bytes)
         with Progress(grid.height, unit=" rows", desc="checking grids", bar=progress) as b:
-            low = _scan(grid, plan.check_rows, b)
-        features = _read_features(scenario, grid.crs)
+            low = scan_grid(grid, plan.check_rows, b)
+        features = read_budget_features(scenario, grid.crs)
         if not grid.cell_grids:
-            _check_thickness(members, low, grid.airy, "channel.thickness" in spec.vary)
+            check_thickness(members, low, grid.airy, "channel.thickness" in spec.vary)
         clock.lap("check grids")
         writer, reducer = _map_outputs(folder, grid, scenario, spec, plan)
         written = _maps(grid, members, plan, reducer, writer, progress)
@@ -201,7 +201,7 @@ def run_ensemble(
         member_budgets = None
         if features:
             with Progress(None, unit=" fields", desc="budgets", bar=progress) as b:
-                member_budgets = _member_budgets(
+                member_budgets = budgets_by_member(
                     grid, members, features, fast, plan.rows, memory_bytes, b
                 )
             clock.lap("budgets")
@@ -295,7 +295,7 @@ def _plan(grid, spec: EnsembleSpec, fast: bool, strip_rows, memory_bytes: int) -
 
 def _map_outputs(folder: Path, grid, scenario, spec: EnsembleSpec, plan: _Plan):
     """The map writer (NetCDF, GeoTIFF, figure rows) and the per-cell statistics reducer."""
-    buffers = _Buffers(spec.members)
+    buffers = MemberBuffers(spec.members)
     reducer = report.Reducer(
         plan.names,
         spec.exceedance_variable,
@@ -316,7 +316,7 @@ def _maps(grid, members, plan: _Plan, reducer, writer, progress: bool) -> list[s
         if plan.fast:
             desc = f"ensemble ({M} members)"
             with Progress(grid.height * grid.width, unit=" cells", desc=desc, bar=progress) as b:
-                _fast_maps(
+                fast_maps(
                     grid,
                     members,
                     plan.needed,
@@ -331,9 +331,7 @@ def _maps(grid, members, plan: _Plan, reducer, writer, progress: bool) -> list[s
             total = M * -(-grid.height // plan.rows)
             desc = f"ensemble ({M} members, fallback)"
             with Progress(total, unit=" member-strips", desc=desc, bar=progress) as b:
-                _fallback_maps(
-                    grid, members, plan.needed, reducer, writer, plan.rows, plan.chunk, b
-                )
+                fallback_maps(grid, members, plan.needed, reducer, writer, plan.rows, plan.chunk, b)
         return writer.close()
     except BaseException:
         writer.abort()

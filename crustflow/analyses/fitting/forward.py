@@ -19,14 +19,14 @@ import dataclasses
 
 import numpy as np
 
-from crustflow.analyses.ensemble.engine import _Grid, _member_fields, _scan
+from crustflow.analyses.ensemble.engine import EnsembleGrid, member_fields, scan_grid
 from crustflow.analyses.ensemble.fast import (
-    _ON_VALID,
     FAST_VARIABLES,
-    _block_basis,
-    _Buffers,
-    _Chunk,
-    _Scalars,
+    ON_VALID_FIELDS,
+    MemberBuffers,
+    MemberChunk,
+    MemberScalars,
+    block_basis,
 )
 from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
@@ -85,11 +85,11 @@ class SiteModel:
         if fast and self.obstacle:
             raise CrustflowInputError(f"the fast path does not apply: {self.obstacle}")
         self.fast = self.obstacle is None if fast is None else bool(fast)
-        grid = _Grid(scenario)
+        grid = EnsembleGrid(scenario)
         try:
             self.width, self.airy = grid.width, grid.airy
             self.strip_rows = strip_rows_for(grid.width)
-            self.lowest = _scan(grid, self.strip_rows, _NoBar())
+            self.lowest = scan_grid(grid, self.strip_rows, SilentBar())
             cells = np.asarray(rows, dtype=np.int64) * grid.width + np.asarray(cols)
             self.unique, self.index = np.unique(cells, return_inverse=True)
             if self.fast:
@@ -98,7 +98,7 @@ class SiteModel:
                 self.strips = [s for s in grid.blocks(self.strip_rows) if self._cells_in(s).size]
         finally:
             grid.close()
-        self._buffers: dict[int, _Buffers] = {}
+        self._buffers: dict[int, MemberBuffers] = {}
 
     # -- set-up ------------------------------------------------------------------------------
 
@@ -115,7 +115,7 @@ class SiteModel:
             if not pos.size:
                 continue
             T = None if grid.airy else strip.crust_thickness(self.scenario.parameters)
-            basis = _block_basis(strip.elevation, T, strip.geometry)
+            basis = block_basis(strip.elevation, T, strip.geometry)
             flat = self.unique[pos] - strip.r0 * self.width
             for k, v in basis.items():
                 if k not in columns:
@@ -134,7 +134,7 @@ class SiteModel:
         if self.fast:
             ok = np.empty(self.variables.size, dtype=bool)
             for name in set(self.variables):
-                mask = self.columns["valid" if name in _ON_VALID else "live"]
+                mask = self.columns["valid" if name in ON_VALID_FIELDS else "live"]
                 sel = self.variables == name
                 ok[sel] = mask[self.index[sel]]
             return ok
@@ -175,8 +175,8 @@ class SiteModel:
             value = getattr(p, name)
             return np.full(n, np.nan if value is None else float(value))
 
-        buffers = self._buffers.setdefault(n, _Buffers(n))
-        chunk = _Chunk(self.columns, _Scalars.of_values(get, self.airy), buffers)
+        buffers = self._buffers.setdefault(n, MemberBuffers(n))
+        chunk = MemberChunk(self.columns, MemberScalars.of_values(get, self.airy), buffers)
         out = np.empty((n, self.variables.size))
         for name in set(self.variables):
             sel = self.variables == name
@@ -198,7 +198,7 @@ class SiteModel:
             at = np.flatnonzero(np.isin(self.index, pos))
             lookup = np.searchsorted(pos, self.index[at])
             for m, member in enumerate(members):
-                si = _member_fields(strip, member, self.scenario, names)
+                si = member_fields(strip, member, self.scenario, names)
                 for name in names:
                     sel = self.variables[at] == name
                     out[m, at[sel]] = si[name].ravel()[flat][lookup[sel]]
@@ -215,11 +215,11 @@ class SiteModel:
         def get(name):
             return np.asarray(values.get(name, np.full(n, getattr(p, name) or np.nan)), float)
 
-        s = _Scalars.of_values(get, True)
+        s = MemberScalars.of_values(get, True)
         return s.t0 + (s.a if low["H"] >= 0 else s.b) * low["H"]
 
 
-class _NoBar:
+class SilentBar:
     """A progress bar that shows nothing (the grid scan's bar)."""
 
     def update(self, n) -> None:

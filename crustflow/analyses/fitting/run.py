@@ -38,10 +38,10 @@ import numpy as np
 import pandas as pd
 
 from crustflow.analyses.ensemble import report
-from crustflow.analyses.ensemble.engine import _fallback_maps, _fast_maps, _Grid
-from crustflow.analyses.ensemble.fast import _Buffers
+from crustflow.analyses.ensemble.engine import EnsembleGrid, fallback_maps, fast_maps
+from crustflow.analyses.ensemble.fast import MemberBuffers
 from crustflow.analyses.ensemble.run import FAST_ARRAYS, MEMORY_BYTES
-from crustflow.analyses.fitting.forward import SiteModel, _NoBar, fit_obstacle
+from crustflow.analyses.fitting.forward import SilentBar, SiteModel, fit_obstacle
 from crustflow.analyses.fitting.likelihood import Posterior, Prior
 from crustflow.analyses.fitting.sampler import diagnostics, run_sampler
 from crustflow.engine.strips import strip_rows_for
@@ -260,7 +260,7 @@ def _spec_of(scenario):
 
 
 def _observations(scenario, spec):
-    grid = _Grid(scenario)
+    grid = EnsembleGrid(scenario)
     try:
         return read_observations(spec, grid.sources["topography"])
     finally:
@@ -467,10 +467,10 @@ def _predictive_maps(scenario, members, folder: Path) -> list[str]:
     M = len(members)
     names = list(spec.variables)
     fast = fit_obstacle(scenario, names) is None
-    grid = _Grid(scenario)
+    grid = EnsembleGrid(scenario)
     try:
         rows = strip_rows_for(grid.width)
-        buffers = _Buffers(M)
+        buffers = MemberBuffers(M)
         reducer = report.Reducer(names, None, (), PREDICTIVE_PERCENTILES, M, buffers.get)
         nc_only = dataclasses.replace(scenario, formats=("netcdf",))
         writer = report.MapWriter(
@@ -479,10 +479,10 @@ def _predictive_maps(scenario, members, folder: Path) -> list[str]:
         try:
             if fast:
                 chunk = max(1, MEMORY_BYTES // (8 * M * FAST_ARRAYS))
-                _fast_maps(grid, members, names, reducer, writer, rows, chunk, buffers, _NoBar())
+                fast_maps(grid, members, names, reducer, writer, rows, chunk, buffers, SilentBar())
             else:
                 chunk = max(1, MEMORY_BYTES // (8 * M * 2 * (len(names) + 2)))
-                _fallback_maps(grid, members, names, reducer, writer, rows, chunk, _NoBar())
+                fallback_maps(grid, members, names, reducer, writer, rows, chunk, SilentBar())
             writer.close()
         except BaseException:
             writer.abort()
