@@ -39,7 +39,6 @@ References
 
 from __future__ import annotations
 
-import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -61,7 +60,7 @@ from crustflow.analyses.ensemble.fast import (
     fast_fields,
     fast_path_obstacle,
 )
-from crustflow.engine.progress import Progress
+from crustflow.engine.progress import Progress, StageClock
 from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
 from crustflow.io.grids import provenance as grid_provenance
@@ -182,10 +181,11 @@ def run_ensemble(
     member's whole-grid flux.
     """
     folder = Path(folder)
-    clock = _Clock()
+    clock = StageClock()
+    clock("sample members")
     fast, obstacle = _choose_path(scenario, spec, fast)
     members, samples = sample_members(spec, scenario.parameters)
-    clock.lap("sample members")
+    clock("check grids")
     grid = EnsembleGrid(scenario)
     try:
         plan = _plan(grid, spec, fast, strip_rows, memory_bytes)
@@ -194,25 +194,25 @@ def run_ensemble(
         features = read_budget_features(scenario, grid.crs)
         if not grid.cell_grids:
             check_thickness(members, low, grid.airy, "channel.thickness" in spec.vary)
-        clock.lap("check grids")
+        clock("maps")
         writer, reducer = _map_outputs(folder, grid, scenario, spec, plan)
         written = _maps(grid, members, plan, reducer, writer, progress)
-        clock.lap("maps")
         member_budgets = None
         if features:
+            clock("budgets")
             with Progress(None, unit=" fields", desc="budgets", bar=progress) as b:
                 member_budgets = budgets_by_member(
                     grid, members, features, fast, plan.rows, memory_bytes, b
                 )
-            clock.lap("budgets")
         provenance = grid_provenance(grid.sources)
     finally:
         grid.close()
+    clock("tables and figures")
     written += report.write_tables(folder, samples, member_budgets, spec)
     stats = report.budget_statistics(member_budgets, spec.percentiles, spec.members)
     if "figure" in scenario.formats:
         written += writer.figures(folder, stats, member_budgets)
-    clock.lap("tables and figures")
+    clock.finish()
     summary = {
         "fast_path": bool(fast),
         "fast_path_obstacle": obstacle,
@@ -234,19 +234,6 @@ def run_ensemble(
         budget_statistics=stats if member_budgets is not None else None,
         manifest=dict(summary, outputs=list(written), budget_statistics=budget_records),
     )
-
-
-class _Clock:
-    """Wall time per stage of the run."""
-
-    def __init__(self) -> None:
-        self.timings: dict[str, float] = {}
-        self._last = time.perf_counter()
-
-    def lap(self, stage: str) -> None:
-        now = time.perf_counter()
-        self.timings[stage] = self.timings.get(stage, 0.0) + now - self._last
-        self._last = now
 
 
 def _choose_path(scenario, spec: EnsembleSpec, fast: bool | None) -> tuple[bool, str | None]:

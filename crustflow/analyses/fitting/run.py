@@ -44,6 +44,7 @@ from crustflow.analyses.ensemble.run import FAST_ARRAYS, MEMORY_BYTES
 from crustflow.analyses.fitting.forward import SilentBar, SiteModel, fit_obstacle
 from crustflow.analyses.fitting.likelihood import Posterior, Prior
 from crustflow.analyses.fitting.sampler import diagnostics, run_sampler
+from crustflow.engine.progress import StageClock
 from crustflow.engine.strips import strip_rows_for
 from crustflow.errors import CrustflowInputError
 from crustflow.figures.fitting import corner_figure, residual_figure
@@ -169,14 +170,8 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
     ``m_i`` are those of :func:`crustflow.solve` at the observation cells (the same code path).
     """
     spec = _spec_of(scenario)
-    timings: dict[str, float] = {}
-    clock = [time.perf_counter()]
-
-    def lap(stage: str) -> None:
-        now = time.perf_counter()
-        timings[stage] = round(now - clock[0], 4)
-        clock[0] = now
-
+    clock = StageClock()
+    clock("observations and base maps")
     table = _observations(scenario, spec)
     frame = table.frame
     model = SiteModel(scenario, frame["row"], frame["col"], frame["variable"], fast=fast)
@@ -188,7 +183,6 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
     frame = table.frame
     for name, reason in table.dropped:
         logger.info("observation %r dropped: %s", name, reason)
-    lap("observations and base maps")
     if len(frame) == 0:
         names = ", ".join(repr(n) for n, _ in table.dropped[:5])
         raise CrustflowInputError(
@@ -205,15 +199,16 @@ def fit(scenario, *, fast: bool | None = None, progress: bool = False) -> FitRes
         kind=s.likelihood,
         dof=s.degrees_of_freedom,
     )
+    clock("MAP and sampling")
     chain = run_sampler(posterior, s, progress=progress)
-    lap("MAP and sampling")
+    clock("summary and site predictions")
     samples, summary = _summarise(scenario, prior, chain)
     rng = np.random.Generator(np.random.PCG64(s.seed + 1))
     kept = chain.kept()
     draws = kept[rng.choice(len(kept), size=min(s.predictive_draws, len(kept)), replace=False)]
     observations, chi2, rms = _site_table(frame, posterior, draws, chain.map_theta)
     members = _members(scenario, posterior, draws)
-    lap("summary and site predictions")
+    timings = {stage: round(seconds, 4) for stage, seconds in clock.finish().items()}
     manifest = {
         "spec": spec.describe(),
         "fast_path": model.fast,
