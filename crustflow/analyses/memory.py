@@ -14,8 +14,6 @@ from __future__ import annotations
 import os
 from collections.abc import Callable
 
-from crustflow.analyses.ensemble.fast import fast_path_obstacle
-from crustflow.analyses.ensemble.run import FAST_ARRAYS, FULL_ARRAYS
 from crustflow.errors import CrustflowInputError
 
 __all__ = [
@@ -90,6 +88,11 @@ def ensemble_floor(scenario) -> tuple[int, str, str] | None:
     spec = getattr(scenario, "ensemble", None)
     if spec is None:
         return None
+    # Imported here: a plain run checks its memory too and need not load the ensemble's modules
+    # (their budget tables and figures import geopandas and matplotlib).
+    from crustflow.analyses.ensemble.fast import fast_path_obstacle
+    from crustflow.analyses.ensemble.run import FAST_ARRAYS, FULL_ARRAYS
+
     members = spec.members
     samples = 8 * members * (3 * max(len(spec.vary), 1) + 4)
     if fast_path_obstacle(scenario, spec) is None:
