@@ -101,7 +101,7 @@ def _run_into(scenario, tmp: Path, stages: StageClock, strip_rows, budgets, clie
     written = result["written"]
     written += sidecars(tmp, written)
     if cog:
-        _to_cog(tmp, written, stages)
+        _to_cog(tmp, written, scenario.compression, stages)
     result["table"] = None
     if budgets:
         stages("budgets")
@@ -134,13 +134,13 @@ def _run_into(scenario, tmp: Path, stages: StageClock, strip_rows, budgets, clie
     return result
 
 
-def _to_cog(tmp: Path, written: list[str], stages: StageClock) -> None:
+def _to_cog(tmp: Path, written: list[str], compression: str, stages: StageClock) -> None:
     from crustflow.io.writers import to_cog
 
     stages("cloud-optimised GeoTIFF")
     for name in written:
         if name.endswith(".tif"):
-            to_cog(tmp / name)
+            to_cog(tmp / name, compression)
 
 
 def _figure(figure, tmp: Path, scenario, stages: StageClock) -> list[str]:

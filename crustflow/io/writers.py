@@ -53,6 +53,18 @@ def _geotiff_codec(compression: str, predictor: int) -> dict:
     return {}
 
 
+def _cog_codec(compression: str, predictor: int) -> dict:
+    """GDAL COG driver options of a codec: the same codecs and levels as :func:`_geotiff_codec`
+    under the COG driver's option names (``LEVEL`` for both DEFLATE and ZSTD)."""
+    if compression == "deflate":
+        return {"compress": "DEFLATE", "predictor": predictor, "level": GEOTIFF_DEFLATE_LEVEL}
+    if compression == "zstd":
+        return {"compress": "ZSTD", "predictor": predictor, "level": ZSTD_LEVEL}
+    if compression == "lerc_zstd":
+        return {"compress": "LERC_ZSTD", "max_z_error": 0, "level": ZSTD_LEVEL}
+    return {"compress": "NONE"}
+
+
 def _netcdf_codec(compression: str) -> dict:
     """netCDF4 ``createVariable`` options of a codec; NetCDF has no LERC, so lerc_zstd is zstd."""
     if compression == "deflate":
@@ -366,9 +378,9 @@ def _flag_colour_table(dst, variable: str, attrs: dict) -> None:
     dst.update_tags(1, **tags)
 
 
-def to_cog(path: str | Path) -> None:
-    """Rewrite a tiled GeoTIFF in place as a cloud-optimised GeoTIFF (DEFLATE, overviews: average
-    resampling for continuous variables, nearest for flags).
+def to_cog(path: str | Path, compression: str = "deflate") -> None:
+    """Rewrite a tiled GeoTIFF in place as a cloud-optimised GeoTIFF (the ``[output] compression``
+    codec, lossless; overviews: average resampling for continuous variables, nearest for flags).
 
     Notes
     -----
@@ -386,10 +398,9 @@ def to_cog(path: str | Path) -> None:
         path,
         tmp,
         driver="COG",
-        compress="DEFLATE",
-        predictor=3 if continuous else 2,
         overviews="AUTO",
         resampling="average" if continuous else "nearest",
+        **_cog_codec(compression, 3 if continuous else 2),
     )  # GDAL's CreateCopy carries description, unit, tags and the colour table over
     tmp.replace(path)
 
