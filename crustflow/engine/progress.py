@@ -74,10 +74,10 @@ class Progress:
             share = self.done / self.total
             left = elapsed * (1 - share) / share if share > 0 else float("nan")
             return (
-                f"{self.desc}: {self.done:,} of {self.total:,}{self.unit} ({100 * share:.0f} %), "
-                f"{elapsed:.0f} s so far, about {left:.0f} s left"
+                f"{self.desc}: {_amount(self.done)} of {_amount(self.total)}{self.unit} "
+                f"({100 * share:.0f} %), {elapsed:.0f} s so far, about {left:.0f} s left"
             )
-        return f"{self.desc}: {self.done:,}{self.unit}, {elapsed:.0f} s so far"
+        return f"{self.desc}: {_amount(self.done)}{self.unit}, {elapsed:.0f} s so far"
 
     def close(self) -> None:
         """End the bar; log the final count if the loop was long enough to log at all."""
@@ -93,6 +93,14 @@ class Progress:
 
     def __exit__(self, *exc) -> None:
         self.close()
+
+
+def _amount(value) -> str:
+    """A count as people read it: whole numbers with thousands separators, fractions (model
+    time in Myr) to four significant digits."""
+    if float(value).is_integer():
+        return f"{int(value):,}"
+    return f"{value:,.4g}"
 
 
 class StageClock:

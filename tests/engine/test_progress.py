@@ -43,3 +43,11 @@ def test_every_command_prints_a_summary(scenario_dir, capsys):
     assert "members          12 (fast base-map path)" in capsys.readouterr().out
     assert main(["check", str(scenario_dir / "scenario.toml")]) == 0
     assert "check passed" in capsys.readouterr().out
+
+
+def test_progress_lines_round_model_time(caplog):
+    # A progress in model time (Myr, fractional) reads as rounded numbers, not float reprs.
+    caplog.set_level(logging.INFO, logger="crustflow.engine.progress")
+    with Progress(2.0, unit=" Myr", desc="model time", log_every=0.0) as bar:
+        bar.update(0.19124468277267007)
+    assert "model time: 0.1912 of 2 Myr (10 %)" in caplog.text
