@@ -38,11 +38,14 @@ def evolve(scenario_path: Path, out: Path, *, progress: bool = False) -> dict:
     check_memory(scenario)
     began = time.perf_counter()
     transient = scenario.evolution.mode == "transient"
-    total = scenario.evolution.duration / SECONDS_PER_MYR if transient else None
-    with Progress(total, unit=" Myr", desc="model time", bar=progress and transient) as bar:
+    if transient:
+        total, unit, desc = scenario.evolution.duration / SECONDS_PER_MYR, " Myr", "model time"
+    else:
+        total, unit, desc = None, " pseudo-time steps", "steady-state search"
+    with Progress(total, unit=unit, desc=desc, bar=progress) as bar:
 
-        def advance(t: float, _total: float) -> None:
-            bar.update(t / SECONDS_PER_MYR - bar.done)
+        def advance(t: float, _total: float | None) -> None:
+            bar.update((t / SECONDS_PER_MYR if transient else t) - bar.done)
 
         with atomic_folder(out, inputs) as tmp:
             result = run_evolution(scenario, tmp, advance)

@@ -564,7 +564,11 @@ class _Stepper:
 
 
 def steady_state(
-    problem: ChannelTransport, thickness: np.ndarray, *, tolerance: float
+    problem: ChannelTransport,
+    thickness: np.ndarray,
+    *,
+    tolerance: float,
+    on_step: Callable[[int], None] | None = None,
 ) -> tuple[np.ndarray, StepStats]:
     """The state that no longer changes, by implicit pseudo-time steps of growing length.
 
@@ -576,6 +580,8 @@ def steady_state(
     tolerance : float
         m; the iteration stops when a step of at least :data:`STEADY_MIN_STEP` changes T by less
         than ``STEADY_FRACTION * tolerance``.
+    on_step : callable, optional
+        Called with the number of pseudo-time steps taken after each one (progress display).
 
     Returns
     -------
@@ -607,6 +613,8 @@ def steady_state(
         change = float(np.max(np.abs(new - state)[problem.free])) if problem.free.size else 0.0
         state = new
         stats.steps += 1
+        if on_step is not None:
+            on_step(stats.steps)
         if h >= STEADY_MIN_STEP and change < STEADY_FRACTION * tolerance:
             return state, stats
         h = min(STEADY_MAX_STEP, h * STEADY_GROWTH)

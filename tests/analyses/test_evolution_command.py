@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 import shutil
 from pathlib import Path
 
@@ -174,3 +175,40 @@ def test_whole_globe_has_no_west_edge():
             spec=spec,
             crust_thickness=topo.copy(data=np.full((18, 36), 40e3)),
         )
+
+
+def test_steady_search_that_does_not_settle_says_what_to_do(tmp_path, capsys, monkeypatch):
+    # The pseudo-time iteration gives up (simulated: it raises at once): one line, exit 2, no
+    # output folder, and the advice names the transient mode.
+    from crustflow.analyses.evolution import evolve as evolve_module
+
+    def gives_up(*args, **kwargs):
+        raise RuntimeError("no steady state reached")
+
+    monkeypatch.setattr(evolve_module, "steady_state", gives_up)
+    extra = '\n[evolution]\nmode = "steady"\n[evolution.boundaries]\nwest = "fixed"\n'
+    out = tmp_path / "out"
+    assert main(["evolve", str(_copy(tmp_path, extra)), "--out", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and 'use mode = "transient"' in err
+    assert "80 pseudo-time steps" in err and not out.exists()
+
+
+def test_steady_search_reports_its_steps(tmp_path, caplog, monkeypatch):
+    # Off a terminal the steady search logs pseudo-time steps, not a model time that stays at 0.
+    import logging
+
+    from crustflow.commands import evolve as command
+    from crustflow.engine.progress import Progress
+
+    class EveryStep(Progress):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **dict(kwargs, log_every=0.0))
+
+    monkeypatch.setattr(command, "Progress", EveryStep)
+    caplog.set_level(logging.INFO)
+    extra = '\n[evolution]\nmode = "steady"\n[evolution.boundaries]\nwest = "fixed"\n'
+    out = tmp_path / "out"
+    assert main(["evolve", str(_copy(tmp_path, extra)), "--out", str(out), "--quiet"]) == 0
+    lines = [r.getMessage() for r in caplog.records if "steady-state search" in r.getMessage()]
+    assert lines and re.match(r"steady-state search: \d+ pseudo-time steps, ", lines[-1])

@@ -19,7 +19,7 @@ from crustflow.analyses.evolution.model import (
 from crustflow.engine.api import read_inputs
 from crustflow.errors import CrustflowInputError
 from crustflow.geometry.finite_volume import net_inflow
-from crustflow.physics.diffusion import face_flux, integrate, steady_state
+from crustflow.physics.diffusion import STEADY_MAXITER, face_flux, integrate, steady_state
 from crustflow.scenario.document import Scenario
 from crustflow.scenario.evolution import EvolutionSpec
 from crustflow.variables import variable_attrs
@@ -132,6 +132,20 @@ def _wrap(setup, arrays: dict, coords: dict, dims, attrs: dict) -> xr.Dataset:
     return ds.rio.write_transform(setup.topography.rio.transform())
 
 
+def _no_steady_state(setup: EvolutionSetup) -> str:
+    """What to say when the steady iteration does not settle."""
+    why = "material keeps entering or leaving"
+    if setup.problem.exponent != 1.0:
+        why = (
+            "a power-law channel flows ever more slowly as its load flattens, so stagnant basins "
+            "settle only very slowly"
+        )
+    return (
+        f"no steady state was reached for these edges in {STEADY_MAXITER} pseudo-time steps "
+        f'({why}); use mode = "transient" with a long duration to see where the crust heads'
+    )
+
+
 def run_setup(
     setup: EvolutionSetup,
     *,
@@ -146,7 +160,8 @@ def run_setup(
     setup : EvolutionSetup
     title : str
     progress : callable, optional
-        ``progress(t, total)`` with model times in s, after every accepted step.
+        ``progress(t, total)`` with model times in s, after every accepted step; in steady mode
+        ``progress(steps, None)`` after every pseudo-time step.
     step : float, optional
         A fixed time step, s, without error control (convergence studies).
 
@@ -160,13 +175,11 @@ def run_setup(
     T0 = setup.thickness0.ravel()
     began = _time.perf_counter()
     if spec.mode == "steady":
+        tick = None if progress is None else (lambda n: progress(float(n), None))
         try:
-            T, stats = steady_state(setup.problem, T0, tolerance=spec.tolerance)
+            T, stats = steady_state(setup.problem, T0, tolerance=spec.tolerance, on_step=tick)
         except RuntimeError:
-            raise CrustflowInputError(
-                "no steady state was reached for these edges (material keeps entering or "
-                'leaving); make an edge fixed or use mode = "transient"'
-            ) from None
+            raise CrustflowInputError(_no_steady_state(setup)) from None
         arrays = _snapshot_arrays(setup, T, STEADY_VARIABLES)
         balance = _steady_balance(setup, T.reshape(setup.geometry.shape))
         attrs = dataset_attrs(setup, title)
