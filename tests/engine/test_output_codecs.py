@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 import rasterio
 import xarray as xr
+from affine import Affine
 from conftest import SCENARIO
 
 from crustflow.cli import main
@@ -47,7 +48,7 @@ def test_cloud_optimised_geotiffs_keep_the_codec(tmp_path, compression):
     values = np.linspace(-3.0, 7.0, 96 * 80, dtype="float32").reshape(96, 80)
     path = tmp_path / "v.tif"
     profile = dict(driver="GTiff", width=80, height=96, count=1, dtype="float32", crs="EPSG:32625")
-    profile["transform"] = rasterio.transform.from_origin(500_000, 5_000_000, 250, 250)
+    profile["transform"] = Affine(250.0, 0.0, 500_000.0, 0.0, -250.0, 5_000_000.0)
     with rasterio.open(path, "w", tiled=True, blockxsize=64, blockysize=64, **profile) as dst:
         dst.write(values, 1)
     writers.to_cog(path, compression)
