@@ -212,3 +212,26 @@ def test_steady_search_reports_its_steps(tmp_path, caplog, monkeypatch):
     assert main(["evolve", str(_copy(tmp_path, extra)), "--out", str(out), "--quiet"]) == 0
     lines = [r.getMessage() for r in caplog.records if "steady-state search" in r.getMessage()]
     assert lines and re.match(r"steady-state search: \d+ pseudo-time steps, ", lines[-1])
+
+
+def test_power_law_steady_search_settles_on_the_plateau(tmp_path):
+    # The bundled plateau with a power-law channel, the west edge fixed and inflow from the south:
+    # its stagnant flats made the steady search wander until its Newton solves stopped on the
+    # residual at long pseudo-time steps. At the steady state what enters leaves (value derived:
+    # the volume balance of a state that no longer changes).
+    power = (
+        '\n[channel]\nthickness = "15 km"\nrheology = "power-law"\nstress_exponent = 3\n'
+        'prefactor = "2.5e-32 Pa^-3 s^-1"\n'
+    )
+    text = (SAMPLE / "scenario.toml").read_text()
+    text = re.sub(r"\[channel\]\n(.*\n)*?(?=\n\[)", "", text)
+    text = re.sub(r"\[walls\]\n(.*\n)*?(?=\n\[)", "", text) + power
+    text += '\n[evolution]\nmode = "steady"\n[evolution.boundaries]\nwest = "fixed"\n'
+    text += 'south = { inflow = "300 m^2/yr" }\n'
+    folder = tmp_path / "in"
+    shutil.copytree(SAMPLE, folder)
+    (folder / "power.toml").write_text(text)
+    out = tmp_path / "out"
+    assert main(["evolve", str(folder / "power.toml"), "--out", str(out), "--quiet"]) == 0
+    steady = json.loads((out / "run.json").read_text())["evolution"]
+    assert abs(steady["volume_balance"]["imbalance_relative"]) < 1e-3
