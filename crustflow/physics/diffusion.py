@@ -360,7 +360,8 @@ def _implicit_solve(
     Newton stops when the estimated distance to the solution, ``rho / (1 - rho) |update|`` with
     ``rho`` the observed contraction of the updates (or the update itself before a rate is known),
     is below :data:`NEWTON_FRACTION` of the step tolerance (the convergence test of implicit ODE
-    codes; Hairer & Wanner 1996, Solving Ordinary Differential Equations II, section IV.8).
+    codes; Hairer & Wanner 1996, Solving Ordinary Differential Equations II, section IV.8, from
+    memory).
     """
     a0, a1, a2 = coefficients
     current, previous = history
@@ -378,7 +379,7 @@ def _implicit_solve(
         residual = a0 * state[free] - base - h * _rate(problem, flux)[free]
         if iteration and (linear or residual_stop):
             if np.max(np.abs(residual)) / a0 < NEWTON_FRACTION * tol * (residual_stop or 1.0):
-                return state  # linear law: one solve was enough
+                return state  # linear law: one solve was enough; steady search: residual met
         matrix = solver.matrix(problem, h * weights, a0 * area / slope[free])
         # Linear law: a kept factorization serves as a chord (modified Newton) iteration while
         # only the potential's slope moved (cells crossing sea level); refreshed if that is slow.
